@@ -56,8 +56,8 @@ N_EFF = 3.044
 NEUTRINO_PER_SPECIES = 7.0 / 8.0 * (4.0 / 11.0) ** (4.0 / 3.0)
 #: Photon density parameter per h^2 at T = 2.7255 K from a_B T^4 (Stefan-Boltzmann,
 #: pi^2/15 T^4 in natural units) and the constants above: 2.47298e-5.
-OMEGA_GAMMA_H2_FIDUCIAL = (math.pi**2 / 15.0) * (T_CMB_K * BOLTZMANN_GEV_K) ** 4 / (
-    3.0 * H100_GEV**2 * REDUCED_PLANCK_MASS_GEV**2
+OMEGA_GAMMA_H2_FIDUCIAL = (
+    (math.pi**2 / 15.0) * (T_CMB_K * BOLTZMANN_GEV_K) ** 4 / (3.0 * H100_GEV**2 * REDUCED_PLANCK_MASS_GEV**2)
 )
 
 # --- inflation observables ----------------------------------------------------------------

@@ -58,7 +58,9 @@ def history_datasets(history) -> dict[str, np.ndarray]:
         "hubble_km_s_Mpc": C.hubble_gev_to_km_s_mpc(hubble),
         "epsilon": eps,
         "w_effective": -1.0 + 2.0 * eps / 3.0,
-        "temperature": np.where(np.isfinite(_np(history.ln_temperature)), np.exp(_np(history.ln_temperature)) * mp, np.nan),
+        "temperature": np.where(
+            np.isfinite(_np(history.ln_temperature)), np.exp(_np(history.ln_temperature)) * mp, np.nan
+        ),
         "comoving_distance_Mpc": chi_mpc,
         "luminosity_distance_Mpc": (1.0 + z) * chi_mpc,
         "angular_diameter_distance_Mpc": chi_mpc / (1.0 + z),
@@ -97,7 +99,11 @@ def today_summary(history, cfg) -> dict[str, float]:
     for c in COMPONENTS:
         if f"fraction_{c}" in ds and c != "inflaton":
             out[f"fraction_{c}"] = float(ds[f"fraction_{c}"][i0])
-    h_star = math.exp(float(history.ln_hubble_pivot)) * mp if np.isfinite(float(history.ln_hubble_pivot)) else math.nan
+    h_star = (
+        math.exp(float(history.ln_hubble_pivot)) * mp
+        if np.isfinite(float(history.ln_hubble_pivot))
+        else math.nan
+    )
     out["hubble_at_pivot_exit_GeV"] = h_star
     out["tensor_to_scalar_ratio"] = tensor_to_scalar_ratio(h_star) if np.isfinite(h_star) else math.nan
     if cfg.reheating.kind == "perturbative":
@@ -112,7 +118,8 @@ def run_warnings(history, cfg, summary) -> list[str]:
     if not np.isfinite(summary.get("hubble_at_pivot_exit_GeV", math.nan)):
         out.append(
             "the pivot scale k = 0.05/Mpc left the horizon before the first point of the history "
-            f"(inflation.efolds = {cfg.inflation.efolds:g} is too few to contain it): H_* and r are not computed"
+            f"(inflation.efolds = {cfg.inflation.efolds:g} is too few to contain it): "
+            "H_* and r are not computed"
         )
     elif r > C.R_UPPER_BOUND:
         out.append(
@@ -126,6 +133,7 @@ def run_warnings(history, cfg, summary) -> list[str]:
     if n[0] + ln_h[0] > n[i0] + ln_h[i0]:
         out.append(
             "inflation is too short to contain today's horizon scale: the mode k = a0 H0 was already "
-            "outside the horizon at the first point (raise inflation.efolds, or account for it in the prehistory)"
+            "outside the horizon at the first point (raise inflation.efolds, or account for it "
+            "in the prehistory)"
         )
     return out

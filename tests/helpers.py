@@ -24,14 +24,14 @@ def make_config(text: str = "[inflation]\n", small: bool = True, **overrides):
     return cfg.with_overrides(values)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def solved(text: str, small: bool = True, **overrides):
     """(model, history) for a config, cached across tests (numpy arrays)."""
+    import equinox as eqx
     import jax
     import numpy as np
 
     from backreact.background import expansion_history, model_from_config
-    import equinox as eqx
 
     cfg = make_config(text, small, **overrides)
     model = model_from_config(cfg)

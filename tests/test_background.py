@@ -34,7 +34,9 @@ def test_power_law_profile_gives_closed_form_hubble(eps):
     # Constant eps: H = H_start e^{-eps (N - N_start)} exactly (H' = -eps H). The only
     # other components during inflation are absent (no radiation, matter, Lambda), so
     # the closed form must hold to rounding (1e-12 in ln H over 65 e-folds).
-    cfg, model, h = solved(PROFILE, inflation__eps_start=eps, inflation__eps_end=eps, inflation__hubble_at="start")
+    cfg, model, h = solved(
+        PROFILE, inflation__eps_start=eps, inflation__eps_end=eps, inflation__hubble_at="start"
+    )
     s = _segment(model, "inflation")
     n = h.efolds[s]
     expected = math.log(cfg.inflation.hubble_GeV / C.REDUCED_PLANCK_MASS_GEV) - eps * (n - n[0])
@@ -85,8 +87,16 @@ def test_field_inflation_matches_independent_scipy_integration():
         return 0.5 * y[1] ** 2 - 1.0
 
     end.terminal = True
-    sol = solve_ivp(rhs, (0, 200), [phi0, -dv0 / v0], method="DOP853", rtol=1e-13, atol=1e-15,
-                    events=end, dense_output=True)
+    sol = solve_ivp(
+        rhs,
+        (0, 200),
+        [phi0, -dv0 / v0],
+        method="DOP853",
+        rtol=1e-13,
+        atol=1e-15,
+        events=end,
+        dense_output=True,
+    )
     m_end = sol.t_events[0][0]
     s = _segment(model, "inflation")
     n = h.efolds[s]
@@ -202,17 +212,17 @@ def test_efolds_after_perturbative_reheating_near_liddle_leach():
     # 1990, sec. 5.3, discuss the O(1) factor between T_rh definitions; 0.3 e-fold is a
     # 35% change of T_rh).
     t_rh = 1e9
-    cfg, model, h = solved(
-        PLATEAU_LCDM, reheating__kind="perturbative", reheating__temperature_GeV=t_rh
-    )
+    cfg, model, h = solved(PLATEAU_LCDM, reheating__kind="perturbative", reheating__temperature_GeV=t_rh)
     tab = thermal_table()
     mp = C.REDUCED_PLANCK_MASS_GEV
     rho_end = 3.0 * math.exp(2 * float(h.ln_hubble_end))
     rho_th = tab.density_at_temperature(t_rh)
     g, gs = tab.g_star(np.array([t_rh, C.T_CMB_K * C.BOLTZMANN_GEV_K]))
-    expected = math.log(rho_end / rho_th) / 3.0 + math.log(t_rh / (C.T_CMB_K * C.BOLTZMANN_GEV_K)) + math.log(
-        gs[0] / gs[1]
-    ) / 3.0
+    expected = (
+        math.log(rho_end / rho_th) / 3.0
+        + math.log(t_rh / (C.T_CMB_K * C.BOLTZMANN_GEV_K))
+        + math.log(gs[0] / gs[1]) / 3.0
+    )
     got = -float(h.end_of_inflation)
     assert abs(got - expected) < 0.3, (got, expected)
     del mp
@@ -226,11 +236,20 @@ def test_grid_and_tolerance_refinement_change_h_by_less_than_1e_8():
     # and tightening rtol/atol by 100 must not move ln H there by more than 1e-8.
     text = PLATEAU_LCDM
     over = {"reheating__kind": "perturbative", "reheating__temperature_GeV": 1e11}
-    base = {"grid__points_inflation": 101, "grid__points_reheating": 40,
-            "grid__points_radiation_matter": 100, "grid__points_late": 50}
-    fine = {"grid__points_inflation": 201, "grid__points_reheating": 80,
-            "grid__points_radiation_matter": 200, "grid__points_late": 100,
-            "grid__rtol": 1e-13, "grid__atol": 1e-15}
+    base = {
+        "grid__points_inflation": 101,
+        "grid__points_reheating": 40,
+        "grid__points_radiation_matter": 100,
+        "grid__points_late": 50,
+    }
+    fine = {
+        "grid__points_inflation": 201,
+        "grid__points_reheating": 80,
+        "grid__points_radiation_matter": 200,
+        "grid__points_late": 100,
+        "grid__rtol": 1e-13,
+        "grid__atol": 1e-15,
+    }
     _, m1, h1 = solved(text, False, **over, **base)
     _, m2, h2 = solved(text, False, **over, **fine)
     for seg in ("inflation", "reheating", "radiation_matter"):
@@ -238,9 +257,14 @@ def test_grid_and_tolerance_refinement_change_h_by_less_than_1e_8():
         b = h2.ln_hubble[m2.segment_slices[seg]]
         start = 0 if seg == "inflation" else 1
         coarse_nodes = b[start::2] if seg == "inflation" else b[1::2]
-        np.testing.assert_allclose(h1.efolds[m1.segment_slices[seg]],
-                                   h2.efolds[m2.segment_slices[seg]][start::2] if seg == "inflation"
-                                   else h2.efolds[m2.segment_slices[seg]][1::2], rtol=0, atol=1e-9)
+        np.testing.assert_allclose(
+            h1.efolds[m1.segment_slices[seg]],
+            h2.efolds[m2.segment_slices[seg]][start::2]
+            if seg == "inflation"
+            else h2.efolds[m2.segment_slices[seg]][1::2],
+            rtol=0,
+            atol=1e-9,
+        )
         np.testing.assert_allclose(a, coarse_nodes, rtol=0, atol=1e-8)
 
 

@@ -177,9 +177,7 @@ class History(eqx.Module):
 
     @property
     def rho_total(self):
-        return (
-            self.rho_inflaton + self.rho_radiation + self.rho_matter + self.rho_lambda + self.rho_spectator
-        )
+        return self.rho_inflaton + self.rho_radiation + self.rho_matter + self.rho_lambda + self.rho_spectator
 
 
 # --------------------------------------------------------------------------- grid
@@ -200,7 +198,10 @@ def _clustered(u, span, cluster):
 def _uniform(n, include_first):
     import numpy as np
 
-    return jnp.asarray(np.arange(0 if include_first else 1, n + (0 if include_first else 1)) / (n - 1 if include_first else n))
+    return jnp.asarray(
+        np.arange(0 if include_first else 1, n + (0 if include_first else 1))
+        / (n - 1 if include_first else n)
+    )
 
 
 # ------------------------------------------------------------------ the reheating fluid
@@ -220,7 +221,9 @@ def _junction_w_integral(x, delta, w_end, dw_end, w_final):
     tau = xc / delta
     s1 = tau**4 * (2.5 - 3.0 * tau + tau**2)  # int_0^tau s
     s2 = tau**5 * (2.0 - 2.5 * tau + 6.0 / 7.0 * tau**2)  # int_0^tau tau' s
-    inside = w_end * xc + 0.5 * dw_end * xc**2 - w_end * delta * s1 - dw_end * delta**2 * s2 + w_final * delta * s1
+    inside = (
+        w_end * xc + 0.5 * dw_end * xc**2 - w_end * delta * s1 - dw_end * delta**2 * s2 + w_final * delta * s1
+    )
     return inside + w_final * jnp.maximum(x - delta, 0.0)
 
 
@@ -241,7 +244,11 @@ def _spectator_interp(nodes, rho_q, p_q):
 
 
 def _ode(rhs, t0, t1, y0, ts, model, event=None, dense=False):
-    saveat = diffrax.SaveAt(ts=ts, t1=True, dense=dense) if ts is not None else diffrax.SaveAt(t1=True, dense=dense)
+    saveat = (
+        diffrax.SaveAt(ts=ts, t1=True, dense=dense)
+        if ts is not None
+        else diffrax.SaveAt(t1=True, dense=dense)
+    )
     return diffrax.diffeqsolve(
         diffrax.ODETerm(rhs),
         diffrax.Dopri8(),
@@ -264,7 +271,9 @@ def _inflation_landmarks(model: ExpansionModel):
     """
     if model.profile is not None:
         prof = model.profile
-        lnh0 = model.ln_hubble_ref + jnp.where(model.hubble_at_end, prof.integrated_epsilon(model.efolds), 0.0)
+        lnh0 = model.ln_hubble_ref + jnp.where(
+            model.hubble_at_end, prof.integrated_epsilon(model.efolds), 0.0
+        )
         return {"n_end": model.efolds, "lnh0": lnh0}
     pot = model.potential
     phi0 = pot.slow_roll_field(model.efolds + _ATTRACTOR_MARGIN)
@@ -297,7 +306,14 @@ def _inflation_landmarks(model: ExpansionModel):
     v_r, _ = pot.potential(phi_r)
     ln_h_unit = 0.5 * jnp.log(v_r / (3.0 - 0.5 * dphi_r**2))
     ln_v0 = 2.0 * (model.ln_hubble_ref - ln_h_unit)
-    return {"n_end": model.efolds, "m_s": m_s, "phi0": phi0, "dphi0": -dv0 / v0, "ln_v0": ln_v0}
+    return {
+        "n_end": model.efolds,
+        "m_s": m_s,
+        "phi0": phi0,
+        "dphi0": -dv0 / v0,
+        "ln_v0": ln_v0,
+        "phi_end": sol.ys[0][-1],
+    }
 
 
 def _grid_phase_a(model, n_end, n_reheat):
@@ -433,7 +449,10 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
             return jnp.sqrt((r_phi + r_rad + rho_m(n) + rho_l + sq(n)) / 3.0)
 
         r_phi, pphi, r_rad, p_rad, lnT = components(rh_nodes)
-        t_rh = t_end + _cumulative_quad(lambda n: 1.0 / hubble_rh(n), jnp.concatenate([n_end[None], rh_nodes]))[1:]
+        t_rh = (
+            t_end
+            + _cumulative_quad(lambda n: 1.0 / hubble_rh(n), jnp.concatenate([n_end[None], rh_nodes]))[1:]
+        )
     else:
         gamma = jnp.exp(model.ln_gamma)
 
@@ -476,7 +495,14 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
         "inf_nodes": inf_nodes,
         "rh_nodes": rh_nodes,
         "inf": inf,
-        "rh": {"rho_phi": r_phi, "rho_rad": r_rad, "rho_tot": rho_tot_rh, "p_tot": p_tot_rh, "t": t_rh, "lnT": lnT},
+        "rh": {
+            "rho_phi": r_phi,
+            "rho_rad": r_rad,
+            "rho_tot": rho_tot_rh,
+            "p_tot": p_tot_rh,
+            "t": t_rh,
+            "lnT": lnT,
+        },
         "lnS": lnS,
         "n0": n0_new,
         "n_end": n_end,
@@ -486,25 +512,9 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
 
 
 def _field_hubble_end(model, lm):
-    """ln H at the end of inflation of a field model from V0 and eps = 1 (H^2 = V/2)."""
-    pot = model.potential
-    # At the end (pass 1), phi'^2 = 2, so H^2 = V/(3 - 1) in V0 units.
-    phi_e = _field_end_value(model, lm)
-    v, _ = pot.potential(phi_e)
+    """ln H at the end of inflation of pass 1 (field alone): eps = 1, so H^2 = V/2 (V0 units)."""
+    v, _ = model.potential.potential(lm["phi_end"])
     return 0.5 * (lm["ln_v0"] + jnp.log(v / 2.0))
-
-
-def _field_end_value(model, lm):
-    pot = model.potential
-
-    def rhs(m, y, args):
-        phi, dphi = y
-        v, dv = pot.potential(phi)
-        h2 = v / (3.0 - 0.5 * dphi**2)
-        return (dphi, -(3.0 - 0.5 * dphi**2) * dphi - dv / h2)
-
-    sol = _ode(rhs, 0.0, lm["m_s"] + model.efolds, (lm["phi0"], lm["dphi0"]), None, model)
-    return sol.ys[0][-1]
 
 
 def _reheat_landmark(model, n_end, lnh_end):

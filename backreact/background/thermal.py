@@ -208,10 +208,9 @@ class ThermalTable:
 def thermal_table(n_eff: float = C.N_EFF) -> ThermalTable:
     """Build (and cache) the radiation table for a given N_eff. Takes ~0.5 s."""
     lnT = np.arange(_LN_T_MIN, _LN_T_MAX + 0.5 * _TABLE_STEP, _TABLE_STEP)
-    rho, s = _plasma(np.exp(lnT), n_eff)
+    _, s = _plasma(np.exp(lnT), n_eff)
     ln_mp = math.log(C.REDUCED_PLANCK_MASS_GEV)
     lns = np.log(s) - 3.0 * ln_mp
-    lnrho = np.log(rho) - 4.0 * ln_mp
     if not np.all(np.diff(lns) > 0):
         raise RuntimeError("thermal table: entropy density is not increasing with T")
     # Resample on a uniform ln s grid (the JAX evaluator needs uniform nodes).
