@@ -1,0 +1,375 @@
+"""Special functions of the memory kernel (DESIGN 2.3.3), in JAX (float64, jit-able, differentiable).
+
+- ``freeze_factor`` C(eps): frozen super-horizon amplitude of a massless mode in power-law
+  inflation, M = H(N1)^2 C(eps) / (2 k^3), from the late-time limit of the Hankel-function mode.
+- ``reentry_factor`` F(eps): phase-averaged transfer deep inside the horizon after re-entry
+  during an era of constant eps > 1, <T> -> F(eps) (a(N2)/a(N))^2.
+- ``local_constant`` c(eps): finite constant of the local (renormalized, minimally subtracted)
+  part of the coincident propagator; its 1/eps poles cancel, so near eps = 0 a Taylor series
+  (and a Chebyshev expansion up to 0.4) is used. c has a pole at eps = 1/2; the local part uses
+  ``local_constant_capped`` = c(min(eps, LOCAL_EPS_MAX)).
+- ``bessel_transfer`` T(p, z) = 0F1(; p + 1/2; -z^2/4)^2
+  = [Gamma(p + 1/2) (z/2)^(1/2 - p) J_(p - 1/2)(z)]^2, the uniform Bessel kernel of a frozen mode
+  in an era of constant eps > 1 (p = 1/(eps - 1), z = p k/(aH)); ``transfer_kernel`` is the same
+  function replaced smoothly by its phase average above z = Z_AVERAGE_START.
+
+Everything goes through gammaln/digamma: Gamma(nu)^2 overflows for eps > 0.994. The derivations
+and measured accuracies are in docs/propagator_memory_kernel.md.
+"""
+
+from __future__ import annotations
+
+import math
+
+from jax.scipy.special import digamma, gammaln
+
+from .._jax import jax, jnp
+
+__all__ = [
+    "LOCAL_EPS_MAX",
+    "P_MAX",
+    "Z_AVERAGE_END",
+    "Z_AVERAGE_START",
+    "bessel_transfer",
+    "bessel_transfer_average",
+    "freeze_factor",
+    "local_constant",
+    "local_constant_capped",
+    "log_freeze_factor",
+    "reentry_factor",
+    "transfer_kernel",
+    "transfer_kernel_lnz",
+]
+
+P_MAX = 25.0
+"""Cap of the kernel index p = 1/(eps - 1) (it diverges as eps -> 1+)."""
+LOCAL_EPS_MAX = 0.4
+"""The local part uses c(min(eps, LOCAL_EPS_MAX)): c has a pole at eps = 1/2."""
+Z_AVERAGE_START = 30.0
+"""``transfer_kernel`` equals T(p, z) exactly for z <= Z_AVERAGE_START ..."""
+Z_AVERAGE_END = 36.0
+"""... and its phase average for z >= Z_AVERAGE_END (C^3 blend in ln z in between)."""
+
+_SERIES_EPS = 0.1  # c(eps) by its Taylor series below this, by the closed form above
+# Taylor coefficients of c(eps) about eps = 0 (c(0) = 0), a_1 ... a_24: Cauchy integrals of the
+# closed form on |eps| = 1/4 at 60 significant digits (mpmath, 512 nodes), computed once.
+# Radius of convergence 1/2 (the pole of c); truncation error at eps = 0.1 below 1e-16.
+_C_TAYLOR = (
+    1.405315745747627696815739,
+    1.025540052849323194752352,
+    1.950915600448108123806094,
+    3.57467742098511709713927,
+    6.746882039631215927617227,
+    13.00348813868858852749573,
+    25.38481308453160761919795,
+    49.94859322462174527056356,
+    98.78031414600231557910535,
+    196.0071170603284501945642,
+    389.818278949253956029129,
+    776.4957623938027434888521,
+    1548.459879628569151900927,
+    3090.337586349480059363251,
+    6171.064654669712234211852,
+    12328.03857671030804139399,
+    24635.34744770704330685021,
+    49240.11266447981707762826,
+    98435.0021431910781845317,
+    196802.9990460023245637656,
+    393506.5534129363296519171,
+    786865.307676301846724229,
+    1573510.682368059328281317,
+    3146693.751278768892440253,
+)
+
+# Chebyshev coefficients of c(eps) on [0.1, 0.4] (t = (2 eps - 0.5)/0.3), from the closed form at
+# 50 digits on 48 Chebyshev nodes (mpmath), computed once; 34 terms, truncation error < 1e-16.
+_CHEB_LO, _CHEB_HI = 0.1, 0.4
+_C_CHEB = (
+    0.57928969447063313087,
+    0.51556996621276601353,
+    0.11734163581513196684,
+    0.036854917352917583287,
+    0.011914765111492321203,
+    0.0039151408741505486571,
+    0.0012959097062313838376,
+    0.00043042246587399627659,
+    0.00014320443036326417334,
+    0.000047686922839013549167,
+    0.000015887034361211025303,
+    5.2941180794386161316e-6,
+    1.7644215070853802488e-6,
+    5.8808837390178408958e-7,
+    1.9601987396821369431e-7,
+    6.5338191216800462719e-8,
+    2.1779070695949813398e-8,
+    7.2596298419251398319e-9,
+    2.4198654254867190141e-9,
+    8.0661973348306604442e-10,
+    2.6887285935040558867e-10,
+    8.9624214916931382232e-11,
+    2.9874725012776834729e-11,
+    9.9582391997035597055e-12,
+    3.3194126069977156367e-12,
+    1.1064707835101624759e-12,
+    3.6882357859721461106e-13,
+    1.2294118990568915343e-13,
+    4.0980396084300698956e-14,
+    1.3660131925548235845e-14,
+    4.5533772894248104472e-15,
+    1.5177924262539227367e-15,
+    5.059308080895281736e-16,
+    1.6864360257328635932e-16,
+)
+
+_LN_PI = math.log(math.pi)
+_LN_2 = math.log(2.0)
+
+
+# ------------------------------------------------------------------ C, F, c
+
+
+def log_freeze_factor(eps):
+    """ln C(eps) for eps < 1 (-inf for eps >= 1, where C -> 0 faster than any power)."""
+    eps = jnp.asarray(eps, dtype=float)
+    inside = eps < 1.0
+    e = jnp.where(inside, eps, 0.0)  # safe value for the unused branch (finite gradients)
+    inv = 1.0 / (1.0 - e)
+    val = 2.0 * gammaln(0.5 + inv) + inv * (2.0 * _LN_2 + 2.0 * jnp.log1p(-e)) - _LN_PI
+    return jnp.where(inside, val, -jnp.inf)
+
+
+def freeze_factor(eps):
+    """C(eps) = (1/pi) Gamma^2(1/2 + 1/(1 - eps)) [4 (1 - eps)^2]^(1/(1 - eps)); 0 for eps >= 1.
+
+    Exact frozen amplitude |u|^2 = H(N1)^2 C / (2 k^3) of a massless mode in power-law inflation
+    (Hankel mode; Lyth & Stewart 1992). C(0) = 1, C(1/2) = 9/16.
+    """
+    eps = jnp.asarray(eps, dtype=float)
+    inside = eps < 1.0
+    return jnp.where(inside, jnp.exp(log_freeze_factor(jnp.where(inside, eps, 0.0))), 0.0)
+
+
+def reentry_factor(eps):
+    """F(eps) = (1/(2 pi)) Gamma^2(1/2 + p) [4/p^2]^p, p = 1/(eps - 1), for eps > 1 (NaN otherwise).
+
+    Phase average of the transfer deep inside: <T> -> F (a(N2)/a(N))^2. F(2) = 1/2,
+    F(3/2) = 9/32, F(3) = 2/pi.
+    """
+    eps = jnp.asarray(eps, dtype=float)
+    ok = eps > 1.0
+    e = jnp.where(ok, eps, 2.0)
+    p = 1.0 / (e - 1.0)
+    val = jnp.exp(2.0 * gammaln(0.5 + p) + p * (2.0 * _LN_2 - 2.0 * jnp.log(p)) - _LN_2 - _LN_PI)
+    return jnp.where(ok, val, jnp.nan)
+
+
+def _local_constant_closed(eps):
+    nu = 0.5 + 1.0 / (1.0 - eps)
+    psi = digamma(1.5 - nu) + digamma(-0.5 - nu) + digamma(1.5 + nu) + digamma(-0.5 + nu)
+    return freeze_factor(eps) * (1.0 - eps) / (2.0 * eps) + 0.5 * (2.0 - eps) * (
+        _LN_2 - 0.5 - jnp.log1p(-eps) - 0.25 * psi
+    )
+
+
+def _local_constant_series(eps):
+    acc = jnp.zeros_like(eps)
+    for a in reversed(_C_TAYLOR):
+        acc = (acc + a) * eps
+    return acc
+
+
+def _local_constant_cheb(eps):
+    t = (2.0 * eps - (_CHEB_LO + _CHEB_HI)) / (_CHEB_HI - _CHEB_LO)
+    b1 = jnp.zeros_like(t)
+    b2 = jnp.zeros_like(t)
+    for a in reversed(_C_CHEB[1:]):  # Clenshaw
+        b1, b2 = 2.0 * t * b1 - b2 + a, b1
+    return t * b1 - b2 + _C_CHEB[0]
+
+
+def local_constant_capped(eps):
+    """c(min(eps, LOCAL_EPS_MAX)), the form the local part uses (DESIGN 2.3.3).
+
+    Taylor series about 0 for eps < 0.1 and a Chebyshev expansion on [0.1, 0.4] (both agree
+    with the closed form to 1e-15); polynomial, so its derivatives are cheap and exact.
+    """
+    eps = jnp.minimum(jnp.asarray(eps, dtype=float), LOCAL_EPS_MAX)
+    small = eps < _SERIES_EPS
+    series = _local_constant_series(jnp.where(small, eps, 0.0))
+    cheb = _local_constant_cheb(jnp.where(small, _SERIES_EPS, eps))
+    return jnp.where(small, series, cheb)
+
+
+def local_constant(eps):
+    """c(eps), the finite constant of the local part (DESIGN 2.3.3), for eps < 1/2.
+
+    c(eps) = C(eps)(1 - eps)/(2 eps) + ((2 - eps)/2) [ln 2 - 1/2 - ln(1 - eps)
+             - (1/4)(psi(3/2 - nu) + psi(-1/2 - nu) + psi(3/2 + nu) + psi(-1/2 + nu))],
+    nu = 1/2 + 1/(1 - eps). The 1/eps poles cancel: Taylor series (radius 1/2) for eps < 0.1,
+    Chebyshev expansion on [0.1, 0.4], the closed form above 0.4. c(0) = 0,
+    c'(0) = 1.405315746. Pole at eps = 1/2: the local part uses c(min(eps, LOCAL_EPS_MAX)).
+    """
+    eps = jnp.asarray(eps, dtype=float)
+    low = eps <= LOCAL_EPS_MAX
+    closed = _local_constant_closed(jnp.where(low, 0.45, eps))
+    return jnp.where(low, local_constant_capped(jnp.where(low, eps, 0.0)), closed)
+
+
+# ------------------------------------------------------------------ T(p, z)
+
+_SERIES_TERMS = 64  # 0F1 power series (enough for z <= 12 + p, p <= 25)
+_HANKEL_TERMS = 24  # Hankel asymptotic expansion of J_nu (terminates for integer p)
+_AVERAGE_TERMS = 10  # asymptotic expansion of J_nu^2 + Y_nu^2
+_SERIES_ZMAX_OFFSET = 12.0  # the series is used for z <= 12 + p, the Hankel expansion above
+
+
+def _series_g(p, z):
+    """g = 0F1(; b; -z^2/4) and G1 = z dg/dz by the power series (b = p + 1/2)."""
+    b = p + 0.5
+    w = -0.25 * z * z
+
+    def body(n, c):
+        t, s0, s1 = c
+        t = t * w / (n * (b + n - 1.0))
+        return t, s0 + t, s1 + 2.0 * n * t
+
+    one = jnp.ones_like(z)
+    _, s0, s1 = jax.lax.fori_loop(1, _SERIES_TERMS, body, (one, one, jnp.zeros_like(z)))
+    return s0, s1
+
+
+def _hankel_g(p, z):
+    """g and G1 = z dg/dz from the Hankel asymptotic expansion of J_nu, nu = p - 1/2."""
+    nu = p - 0.5
+    mu = 4.0 * nu * nu
+    y = 1.0 / z
+    P = jnp.ones_like(z)
+    Q = jnp.zeros_like(z)
+    P1 = jnp.zeros_like(z)  # z dP/dz
+    Q1 = jnp.zeros_like(z)
+    term = jnp.ones_like(z)
+    for k in range(1, _HANKEL_TERMS):
+        term = term * (mu - (2 * k - 1) ** 2) * y / (8.0 * k)
+        if k % 2 == 0:
+            sgn = (-1.0) ** (k // 2)
+            P = P + sgn * term
+            P1 = P1 - k * sgn * term
+        else:
+            sgn = (-1.0) ** ((k - 1) // 2)
+            Q = Q + sgn * term
+            Q1 = Q1 - k * sgn * term
+    om = z - (0.5 * nu + 0.25) * math.pi
+    co, si = jnp.cos(om), jnp.sin(om)
+    amp = jnp.sqrt(2.0 / (math.pi * z))
+    J = amp * (P * co - Q * si)
+    zJp = amp * (-0.5 * (P * co - Q * si) + P1 * co - Q1 * si - z * (P * si + Q * co))
+    lead = jnp.exp(gammaln(p + 0.5) - nu * jnp.log(0.5 * z))
+    return lead * J, lead * (zJp - nu * J)
+
+
+def _exact_g(p, z):
+    """g and G1 = z g_z: series for z <= 12 + p, Hankel expansion above (both branches safe)."""
+    zsw = _SERIES_ZMAX_OFFSET + p
+    use_series = z <= zsw
+    gs, g1s = _series_g(p, jnp.minimum(z, zsw))
+    gh, g1h = _hankel_g(p, jnp.maximum(z, zsw))
+    return jnp.where(use_series, gs, gh), jnp.where(use_series, g1s, g1h)
+
+
+def _exact_lnz_jet(p, z):
+    """T = g^2 and its first three derivatives in ln z, from g, G1 and the Bessel equation
+    g_zz + (2p/z) g_z + g = 0 (G2 = z^2 g_zz, G3 = z^3 g_zzz; no division by z)."""
+    g, g1 = _exact_g(p, z)
+    z2 = z * z
+    g2 = -2.0 * p * g1 - z2 * g
+    g3 = 2.0 * p * g1 - 2.0 * p * g2 - z2 * g1
+    t0 = g * g
+    zt1 = 2.0 * g * g1  # z T_z
+    z2t2 = 2.0 * (g1 * g1 + g * g2)  # z^2 T_zz
+    z3t3 = 2.0 * (3.0 * g1 * g2 + g * g3)  # z^3 T_zzz
+    return t0, zt1, zt1 + z2t2, zt1 + 3.0 * z2t2 + z3t3
+
+
+def bessel_transfer(p, z):
+    """(T, dT/dz) of T(p, z) = 0F1(; p + 1/2; -z^2/4)^2 = [Gamma(p+1/2) (z/2)^(1/2-p) J_(p-1/2)(z)]^2.
+
+    For 0 < p <= 25, z >= 0: power series for z <= 12 + p, Hankel expansion above; absolute
+    accuracy better than 1e-11 for z <= 36 (see the docs). No phase averaging here.
+    """
+    p = jnp.asarray(p, dtype=float)
+    z = jnp.asarray(z, dtype=float)
+    g, g1 = _exact_g(p, z)
+    zs = jnp.where(z > 0, z, 1.0)
+    dg = jnp.where(z > 0, g1 / zs, 0.0)
+    return g * g, 2.0 * g * dg
+
+
+def _average_lnz_jet(p, z):
+    """Phase average <T> = Gamma(p+1/2)^2 (z/2)^(1-2p) (J^2 + Y^2)_(p-1/2)(z) / 2 and its
+    ln z derivatives; J^2 + Y^2 from its asymptotic expansion in 1/z^2 (DLMF 10.18.17)."""
+    nu = p - 0.5
+    mu = 4.0 * nu * nu
+    lam = jnp.log(z)
+    e = jnp.exp(2.0 * gammaln(p + 0.5) + 2.0 * nu * _LN_2 - _LN_PI - 2.0 * p * lam)
+    y2 = 1.0 / (z * z)
+    s = [jnp.ones_like(z), jnp.zeros_like(z), jnp.zeros_like(z), jnp.zeros_like(z)]
+    term = jnp.ones_like(z)
+    for k in range(1, _AVERAGE_TERMS):
+        term = term * ((2 * k - 1) / (2.0 * k)) * (mu - (2 * k - 1) ** 2) * 0.25 * y2
+        for n in range(4):
+            s[n] = s[n] + (-2.0 * k) ** n * term
+    a = -2.0 * p
+    t0 = e * s[0]
+    t1 = e * (a * s[0] + s[1])
+    t2 = e * (a * a * s[0] + 2.0 * a * s[1] + s[2])
+    t3 = e * (a**3 * s[0] + 3.0 * a * a * s[1] + 3.0 * a * s[2] + s[3])
+    return t0, t1, t2, t3
+
+
+def bessel_transfer_average(p, z):
+    """Phase average of T(p, z) for large z: Gamma(p+1/2)^2 (z/2)^(1-2p)/(pi z) [1 + p(p-1)/(2 z^2)
+    + ...] = F(eps) (a(N2)/a(N))^2 [1 + O(z^-2)]; exact for p = 1 and p = 2."""
+    p = jnp.asarray(p, dtype=float)
+    z = jnp.asarray(z, dtype=float)
+    return _average_lnz_jet(p, z)[0]
+
+
+_LN_ZA = math.log(Z_AVERAGE_START)
+_LN_ZB = math.log(Z_AVERAGE_END)
+
+
+def transfer_kernel_lnz(p, z):
+    """The kernel used by the memory method and its derivatives in ln z at fixed p.
+
+    Returns (T, dT/dlnz, d2T/dlnz2, d3T/dlnz3): exact T(p, z) for z <= Z_AVERAGE_START, its
+    phase average for z >= Z_AVERAGE_END, blended with a C^3 smoothstep in ln z in between.
+    """
+    p = jnp.asarray(p, dtype=float)
+    z = jnp.asarray(z, dtype=float)
+    ex = _exact_lnz_jet(p, jnp.minimum(z, Z_AVERAGE_END))
+    av = _average_lnz_jet(p, jnp.maximum(z, Z_AVERAGE_START))
+    lam = jnp.log(jnp.maximum(z, 1e-300))
+    delta = _LN_ZB - _LN_ZA
+    u = jnp.clip((lam - _LN_ZA) / delta, 0.0, 1.0)
+    v = 1.0 - u
+    s0 = u**4 * (35.0 - 84.0 * u + 70.0 * u * u - 20.0 * u**3)
+    s1 = 140.0 * (u * v) ** 3 / delta
+    s2 = 420.0 * (u * v) ** 2 * (1.0 - 2.0 * u) / delta**2
+    s3 = 840.0 * u * v * (5.0 * u * u - 5.0 * u + 1.0) / delta**3
+    s = (s0, s1, s2, s3)
+    d = [av[n] - ex[n] for n in range(4)]
+    binom = ((1,), (1, 1), (1, 2, 1), (1, 3, 3, 1))
+    out = []
+    for n in range(4):
+        acc = ex[n]
+        for i in range(n + 1):
+            acc = acc + binom[n][i] * s[i] * d[n - i]
+        out.append(acc)
+    return tuple(out)
+
+
+def transfer_kernel(p, z):
+    """(T, dT/dz) of the phase-averaged kernel ``transfer_kernel_lnz`` (z > 0)."""
+    t0, t1, _, _ = transfer_kernel_lnz(p, z)
+    z = jnp.asarray(z, dtype=float)
+    return t0, t1 / z
