@@ -38,7 +38,10 @@ def hermite_uniform(x, x0, step, values, slopes):
     u = (x - x0) / step
     i = jnp.clip(jnp.floor(u).astype(jnp.int32), 0, n - 2)
     t = u - i
-    v, s = _hermite(jnp.clip(t, 0.0, 1.0), step, values[i], values[i + 1], slopes[i], slopes[i + 1])
+    # No clip on t: inside the table t is in [0, 1] by construction, outside the linear
+    # branches below replace the value. (A clip would halve autodiff derivatives exactly at
+    # the nodes: JAX splits the gradient of max/min at ties.)
+    v, s = _hermite(t, step, values[i], values[i + 1], slopes[i], slopes[i + 1])
     lo = x < x0
     hi = x > x0 + (n - 1) * step
     v = jnp.where(lo, values[0] + slopes[0] * (x - x0), v)
@@ -53,7 +56,7 @@ def hermite_nodes(x, nodes, values, slopes):
     i = jnp.clip(jnp.searchsorted(nodes, x, side="right") - 1, 0, n - 2)
     h = nodes[i + 1] - nodes[i]
     t = (x - nodes[i]) / h
-    v, s = _hermite(jnp.clip(t, 0.0, 1.0), h, values[i], values[i + 1], slopes[i], slopes[i + 1])
+    v, s = _hermite(t, h, values[i], values[i + 1], slopes[i], slopes[i + 1])  # no clip: see above
     lo = x < nodes[0]
     hi = x > nodes[-1]
     v = jnp.where(lo, values[0] + slopes[0] * (x - nodes[0]), v)

@@ -395,6 +395,7 @@ SECTIONS: tuple[Section, ...] = (
     Section("reheating", "The transition from inflation to the radiation era."),
     Section("cosmology", "Late-universe contents (today's physical densities)."),
     Section("grid", "Output sampling of the history and integrator tolerances."),
+    Section("propagator", "The spectator's coincident propagator A = <sigma^2> along the history."),
     Section("output", "Where the results are written."),
 )
 
@@ -476,6 +477,27 @@ SCHEMA: tuple[Field, ...] = (
        range=Interval("[]", 1e-14, 1e-4)),
     _F("grid", "atol", FLOAT, 1e-13, "absolute tolerance of the integrator",
        range=Interval("[]", 1e-16, 1e-4)),
+    # --- [propagator]
+    _F("propagator", "method", CHOICE, "exact",
+       "exact: vectorized mode sum (accurate in every era); memory_kernel: fast approximation, "
+       "valid only during inflation and decelerating eras; none: do not compute A",
+       choices=("exact", "memory_kernel", "none")),
+    _F("propagator", "modes_per_efold", FLOAT, 20.0, "density of the k grid in modes per e-fold of ln k",
+       range=Interval("[]", 4.0, 200.0)),
+    _F("propagator", "mu_over_start_hubble", FLOAT, 1.0,
+       "renormalization scale mu in units of H at the first point of the history",
+       range=Interval("()", 0.0, 1e30)),
+    _F("propagator", "start_x", FLOAT, 50.0,
+       "exact method: modes start in the adiabatic vacuum at x = k/(aH) = start_x",
+       range=Interval("[]", 30.0, 1000.0), only=("method", ("exact",))),
+    _F("propagator", "handover_x", FLOAT, 1e-2,
+       "exact method: x outside the horizon where complex modes hand over to the real transfer",
+       range=Interval("[]", 1e-4, 0.1), only=("method", ("exact",))),
+    _F("propagator", "stop_x", FLOAT, 30.0,
+       "exact method: x inside the horizon after which a mode continues by its Bogoliubov envelope",
+       range=Interval("[]", 28.0, 1000.0), only=("method", ("exact",))),
+    _F("propagator", "rtol", FLOAT, 1e-10, "exact method: relative tolerance of the mode integrations",
+       range=Interval("[]", 1e-13, 1e-6), only=("method", ("exact",))),
     # --- [output]
     _F("output", "directory", STR, "runs", "directory of the output file"),
     _F("output", "file", STR, "", "output file name; empty: <scenario.name>.h5 (inside directory)",

@@ -137,3 +137,61 @@ def run_warnings(history, cfg, summary) -> list[str]:
             "in the prehistory)"
         )
     return out
+
+
+def propagator_datasets(prop: dict) -> dict[str, np.ndarray]:
+    """History datasets of the propagator (GeV units) from M_p-unit arrays."""
+    mp = C.REDUCED_PLANCK_MASS_GEV
+    out = {
+        "propagator": prop["A"] * mp**2,
+        "propagator_dN": prop["dA"] * mp**2,
+        "propagator_dNdN": prop["d2A"] * mp**2,
+        "box_propagator": prop["box"] * mp**4,
+    }
+    if "valid" in prop:
+        out["kernel_valid"] = np.asarray(prop["valid"], dtype=float)
+    return out
+
+
+def _z_ranges(z: np.ndarray, mask: np.ndarray) -> str:
+    """Human-readable redshift ranges where mask is True (z decreasing along the grid)."""
+    parts = []
+    i = 0
+    n = len(mask)
+    while i < n:
+        if mask[i]:
+            j = i
+            while j + 1 < n and mask[j + 1]:
+                j += 1
+            parts.append(f"z = {z[i]:.3g} .. {z[j]:.3g}")
+            i = j + 1
+        else:
+            i += 1
+    return ", ".join(parts)
+
+
+def propagator_warnings(history, cfg, prop: dict) -> list[str]:
+    """Warnings about where the propagator method is outside its validity range."""
+    out = []
+    n = _np(history.efolds)
+    z = np.expm1(-n)
+    if "valid" in prop:
+        bad = ~np.asarray(prop["valid"], dtype=bool)
+        if bad.any():
+            out.append(
+                "propagator.method = 'memory_kernel' is outside its validity range (the universe "
+                f"accelerates again after inflation) at {_z_ranges(z, bad)}: A there is not reliable "
+                "(errors of 50-100% are typical); use method = 'exact'"
+            )
+    if cfg.prehistory.kind != "none":
+        # modes of the prior range have k < k_IR = a_start H_start: they re-enter when aH < k_IR
+        lah = n + _np(history.ln_hubble)
+        after = n > float(history.end_of_inflation)
+        if np.any(lah[after] < lah[0]):
+            first = n[after][np.argmax(lah[after] < lah[0])]
+            out.append(
+                "modes of the prehistory (k < a H at the first point) re-enter the horizon from "
+                f"z = {np.expm1(-first):.3g} on: the prior variance is not constant after that, and "
+                "A is only approximate there"
+            )
+    return out

@@ -60,7 +60,15 @@ def run_scenario(cfg: Config) -> RunResult:
     import equinox as eqx
 
     from .background import expansion_history, model_from_config
-    from .observables import history_datasets, run_warnings, today_summary
+    from .observables import (
+        history_datasets,
+        propagator_datasets,
+        propagator_warnings,
+        run_warnings,
+        today_index,
+        today_summary,
+    )
+    from .propagator import propagator_along
 
     t0 = time.perf_counter()
     model = model_from_config(cfg)
@@ -70,15 +78,39 @@ def run_scenario(cfg: Config) -> RunResult:
     _check_finite(history)
     datasets = history_datasets(history)
     today = today_summary(history, cfg)
+    t1 = time.perf_counter()
+    prop = propagator_along(history, cfg)
+    prop_seconds = time.perf_counter() - t1
+    prop_warnings = []
+    if prop:
+        _check_finite_arrays(history, prop, "propagator")
+        datasets.update(propagator_datasets(prop))
+        today["propagator_GeV2"] = float(datasets["propagator"][today_index(history)])
+        prop_warnings = propagator_warnings(history, cfg, prop)
     diagnostics: dict[str, object] = {"solve_seconds": elapsed}
+    if prop:
+        diagnostics["propagator_seconds"] = prop_seconds
+        diagnostics["propagator_method"] = cfg.propagator.method
     if model.potential is not None and np.isfinite(float(history.field_pivot)):
         ns, r_sr = model.potential.slow_roll_observables(float(history.field_pivot))
         diagnostics["slow_roll_n_s"] = float(ns)
         diagnostics["slow_roll_r"] = float(r_sr)
     if math.isfinite(today.get("hubble_at_pivot_exit_GeV", math.nan)):
         diagnostics["pivot_exit_efolds_before_end"] = float(history.end_of_inflation - history.pivot_exit)
-    warnings = list(cfg.warnings) + run_warnings(history, cfg, today)
+    warnings = list(cfg.warnings) + run_warnings(history, cfg, today) + prop_warnings
     return RunResult(cfg, history, datasets, today, diagnostics, warnings)
+
+
+def _check_finite_arrays(history, arrays: dict, stage: str) -> None:
+    n = np.asarray(history.efolds)
+    for name, v in arrays.items():
+        v = np.asarray(v)
+        if v.dtype == bool:
+            continue
+        bad = ~np.isfinite(v)
+        if bad.any():
+            i = int(np.argmax(bad))
+            raise FloatingPointError(f"{stage}: {name} is not finite at N = {n[i]:.4f} (grid point {i})")
 
 
 def _to_numpy(history):

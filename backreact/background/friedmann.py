@@ -190,7 +190,9 @@ def _clustered(u, span, cluster):
 
     def newton(_, d):  # psi is increasing and concave: Newton from below converges
         f = d + big_l * jnp.log1p(d / d0) - target
-        return jnp.clip(d - f / (1.0 + big_l / (d0 + d)), 0.0, span)
+        d = d - f / (1.0 + big_l / (d0 + d))
+        # where, not clip: clip halves autodiff derivatives at the end points (ties)
+        return jnp.where(d < 0.0, 0.0, jnp.where(d > span, span, d))
 
     return jax.lax.fori_loop(0, 40, newton, u * span)
 

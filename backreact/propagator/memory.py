@@ -55,7 +55,7 @@ def _lnh_jet(spline: HistorySpline, n):
     x = spline.efolds
     y = spline.ln_hubble_nodes
     m = -spline.epsilon_nodes
-    i = jnp.clip(jnp.searchsorted(x, n, side="right") - 1, 0, x.shape[0] - 2)
+    i = jnp.clip(jnp.searchsorted(x, n, side="right", method="compare_all") - 1, 0, x.shape[0] - 2)
     hh = x[i + 1] - x[i]
     t = (n - x[i]) / hh
     y0, y1, m0, m1 = y[i], y[i + 1], hh * m[i], hh * m[i + 1]

@@ -55,6 +55,11 @@ _X_SUB = (1.5, 12.0)  # s(x): subtraction of the adiabatic vacuum B4 switches on
 _X_TAPER = (6.0, 28.0)  # w(x): the standing-wave interference switches off
 
 
+# Stage 2 saves at up to every output time (frozen modes are followed to the end):
+# Tsit5's cheaper dense output beats Dopri8 there (measured in benchmarks/).
+STAGE2_SOLVER = diffrax.Tsit5()
+
+
 class ModeSettings(eqx.Module):
     """Numerical settings of the exact method (all static)."""
 
@@ -171,10 +176,10 @@ def _real_rhs(n, y, args):
     return (gp, -(3.0 - eps) * gp - x * x * g)
 
 
-def _solve(rhs, t0, t1, y0, ts, args, settings):
+def _solve(rhs, t0, t1, y0, ts, args, settings, solver=None):
     return diffrax.diffeqsolve(
         diffrax.ODETerm(rhs),
-        diffrax.Dopri8(),
+        solver if solver is not None else diffrax.Dopri8(),
         t0,
         t1,
         dt0=None,
@@ -347,17 +352,22 @@ def mode_plan(spline: HistorySpline, out_n, settings: ModeSettings, oracle: bool
     return ModePlan(n_k, slack(c1), slack(c2))
 
 
-def _saved(rhs, t0, t1, y0, out_n, count, args, settings):
+def _saved(rhs, t0, t1, y0, out_n, count, args, settings, solver=None):
     """Solve from t0 to t1 saving only at the output times inside [t0, t1] (at most
-    ``count`` of them, padded with t1), and at t1. Returns (ys at the padded times, their
-    indices into out_n, a validity mask, ys at t1)."""
+    ``count`` of them) and at t1. Unused save slots are put at t0, not t1: under vmap the
+    saves of one step run as a loop over the whole batch, and padding at t0 makes every
+    mode's padding fall in the same (first) step instead of a burst at each mode's end.
+    Returns (ys at the slots, their indices into out_n, a validity mask, ys at t1)."""
     i0, c = _count_in(out_n, t0, t1)
-    idx = i0 + jnp.arange(count)
-    ok = jnp.arange(count) < c
-    ts = jnp.where(ok, out_n[jnp.clip(idx, 0, out_n.shape[0] - 1)], t1)
+    c = jnp.minimum(c, count)
+    slot = jnp.arange(count)
+    lead = count - c
+    idx = i0 + slot - lead
+    ok = slot >= lead
+    ts = jnp.where(ok, out_n[jnp.clip(idx, 0, out_n.shape[0] - 1)], t0)
     ts = jnp.clip(ts, t0, t1)
     ts = jnp.concatenate([ts, t1[None]])
-    sol = _solve(rhs, t0, t1, y0, ts, args, settings)
+    sol = _solve(rhs, t0, t1, y0, ts, args, settings, solver)
     return [y[:-1] for y in sol.ys], idx, ok, [y[-1] for y in sol.ys]
 
 
@@ -385,7 +395,8 @@ def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSett
         ph = pr1 + 1j * pi1
         r = (ph / qh).real
         (g, gp), idx2, ok2, (g2, gp2) = _saved(
-            _real_rhs, n1, n2, (jnp.ones(()), r), out_n, plan.saves2, (spline, lnk_j), settings
+            _real_rhs, n1, n2, (jnp.ones(()), r), out_n, plan.saves2, (spline, lnk_j), settings,
+            STAGE2_SOLVER,
         )
         amp = jnp.abs(qh)
         ok2 = ok2 & hand & (out_n[jnp.clip(idx2, 0, size - 1)] > n1)

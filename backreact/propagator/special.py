@@ -128,6 +128,7 @@ _LN_2 = math.log(2.0)
 # ------------------------------------------------------------------ C, F, c
 
 
+@jax.jit
 def log_freeze_factor(eps):
     """ln C(eps) for eps < 1 (-inf for eps >= 1, where C -> 0 faster than any power)."""
     eps = jnp.asarray(eps, dtype=float)
@@ -138,6 +139,7 @@ def log_freeze_factor(eps):
     return jnp.where(inside, val, -jnp.inf)
 
 
+@jax.jit
 def freeze_factor(eps):
     """C(eps) = (1/pi) Gamma^2(1/2 + 1/(1 - eps)) [4 (1 - eps)^2]^(1/(1 - eps)); 0 for eps >= 1.
 
@@ -149,6 +151,7 @@ def freeze_factor(eps):
     return jnp.where(inside, jnp.exp(log_freeze_factor(jnp.where(inside, eps, 0.0))), 0.0)
 
 
+@jax.jit
 def reentry_factor(eps):
     """F(eps) = (1/(2 pi)) Gamma^2(1/2 + p) [4/p^2]^p, p = 1/(eps - 1), for eps > 1 (NaN otherwise).
 
@@ -171,35 +174,53 @@ def _local_constant_closed(eps):
     )
 
 
+def _horner(coefs, x):
+    """sum_n coefs[n] x^(n+1) (no constant term), by a rolled Horner loop."""
+    c = jnp.asarray(coefs[::-1])
+
+    def body(i, acc):
+        return (acc + c[i]) * x
+
+    return jax.lax.fori_loop(0, c.shape[0], body, jnp.zeros_like(x))
+
+
 def _local_constant_series(eps):
-    acc = jnp.zeros_like(eps)
-    for a in reversed(_C_TAYLOR):
-        acc = (acc + a) * eps
-    return acc
+    return _horner(_C_TAYLOR, eps)
 
 
 def _local_constant_cheb(eps):
     t = (2.0 * eps - (_CHEB_LO + _CHEB_HI)) / (_CHEB_HI - _CHEB_LO)
-    b1 = jnp.zeros_like(t)
-    b2 = jnp.zeros_like(t)
-    for a in reversed(_C_CHEB[1:]):  # Clenshaw
-        b1, b2 = 2.0 * t * b1 - b2 + a, b1
+    c = jnp.asarray(_C_CHEB[:0:-1])  # a_N ... a_1
+
+    def body(i, b):  # Clenshaw
+        b1, b2 = b
+        return 2.0 * t * b1 - b2 + c[i], b1
+
+    b1, b2 = jax.lax.fori_loop(0, c.shape[0], body, (jnp.zeros_like(t), jnp.zeros_like(t)))
     return t * b1 - b2 + _C_CHEB[0]
 
 
-def local_constant_capped(eps):
-    """c(min(eps, LOCAL_EPS_MAX)), the form the local part uses (DESIGN 2.3.3).
-
-    Taylor series about 0 for eps < 0.1 and a Chebyshev expansion on [0.1, 0.4] (both agree
-    with the closed form to 1e-15); polynomial, so its derivatives are cheap and exact.
-    """
-    eps = jnp.minimum(jnp.asarray(eps, dtype=float), LOCAL_EPS_MAX)
+def _local_constant_poly(eps):
+    """Taylor series below 0.1, Chebyshev expansion on [0.1, 0.4] (use for eps <= 0.4)."""
     small = eps < _SERIES_EPS
     series = _local_constant_series(jnp.where(small, eps, 0.0))
     cheb = _local_constant_cheb(jnp.where(small, _SERIES_EPS, eps))
     return jnp.where(small, series, cheb)
 
 
+@jax.jit
+def local_constant_capped(eps):
+    """c(min(eps, LOCAL_EPS_MAX)), the form the local part uses (DESIGN 2.3.3).
+
+    Taylor series about 0 for eps < 0.1 and a Chebyshev expansion on [0.1, 0.4] (both agree
+    with the closed form to 1e-15); polynomial, so its derivatives are cheap and exact.
+    At and above the cap the value is c(0.4) and the derivative zero.
+    """
+    eps = jnp.asarray(eps, dtype=float)
+    return _local_constant_poly(jnp.where(eps < LOCAL_EPS_MAX, eps, LOCAL_EPS_MAX))
+
+
+@jax.jit
 def local_constant(eps):
     """c(eps), the finite constant of the local part (DESIGN 2.3.3), for eps < 1/2.
 
@@ -212,7 +233,7 @@ def local_constant(eps):
     eps = jnp.asarray(eps, dtype=float)
     low = eps <= LOCAL_EPS_MAX
     closed = _local_constant_closed(jnp.where(low, 0.45, eps))
-    return jnp.where(low, local_constant_capped(jnp.where(low, eps, 0.0)), closed)
+    return jnp.where(low, _local_constant_poly(jnp.where(low, eps, 0.0)), closed)
 
 
 # ------------------------------------------------------------------ T(p, z)
@@ -243,21 +264,21 @@ def _hankel_g(p, z):
     nu = p - 0.5
     mu = 4.0 * nu * nu
     y = 1.0 / z
-    P = jnp.ones_like(z)
-    Q = jnp.zeros_like(z)
-    P1 = jnp.zeros_like(z)  # z dP/dz
-    Q1 = jnp.zeros_like(z)
-    term = jnp.ones_like(z)
-    for k in range(1, _HANKEL_TERMS):
-        term = term * (mu - (2 * k - 1) ** 2) * y / (8.0 * k)
-        if k % 2 == 0:
-            sgn = (-1.0) ** (k // 2)
-            P = P + sgn * term
-            P1 = P1 - k * sgn * term
-        else:
-            sgn = (-1.0) ** ((k - 1) // 2)
-            Q = Q + sgn * term
-            Q1 = Q1 - k * sgn * term
+
+    def body(k, c):
+        term, P, Q, P1, Q1 = c
+        kf = k.astype(float)
+        term = term * (mu - (2.0 * kf - 1.0) ** 2) * y / (8.0 * kf)
+        sgn = jnp.where((k // 2) % 2 == 0, 1.0, -1.0) * term
+        even = k % 2 == 0
+        P = jnp.where(even, P + sgn, P)
+        P1 = jnp.where(even, P1 - kf * sgn, P1)
+        Q = jnp.where(even, Q, Q + sgn)
+        Q1 = jnp.where(even, Q1, Q1 - kf * sgn)
+        return term, P, Q, P1, Q1
+
+    one, zero = jnp.ones_like(z), jnp.zeros_like(z)
+    _, P, Q, P1, Q1 = jax.lax.fori_loop(1, _HANKEL_TERMS, body, (one, one, zero, zero, zero))
     om = z - (0.5 * nu + 0.25) * math.pi
     co, si = jnp.cos(om), jnp.sin(om)
     amp = jnp.sqrt(2.0 / (math.pi * z))
@@ -290,6 +311,7 @@ def _exact_lnz_jet(p, z):
     return t0, zt1, zt1 + z2t2, zt1 + 3.0 * z2t2 + z3t3
 
 
+@jax.jit
 def bessel_transfer(p, z):
     """(T, dT/dz) of T(p, z) = 0F1(; p + 1/2; -z^2/4)^2 = [Gamma(p+1/2) (z/2)^(1/2-p) J_(p-1/2)(z)]^2.
 
@@ -312,12 +334,16 @@ def _average_lnz_jet(p, z):
     lam = jnp.log(z)
     e = jnp.exp(2.0 * gammaln(p + 0.5) + 2.0 * nu * _LN_2 - _LN_PI - 2.0 * p * lam)
     y2 = 1.0 / (z * z)
-    s = [jnp.ones_like(z), jnp.zeros_like(z), jnp.zeros_like(z), jnp.zeros_like(z)]
-    term = jnp.ones_like(z)
-    for k in range(1, _AVERAGE_TERMS):
-        term = term * ((2 * k - 1) / (2.0 * k)) * (mu - (2 * k - 1) ** 2) * 0.25 * y2
-        for n in range(4):
-            s[n] = s[n] + (-2.0 * k) ** n * term
+
+    def body(k, c):
+        term, s0, s1, s2, s3 = c
+        kf = k.astype(float)
+        term = term * ((2.0 * kf - 1.0) / (2.0 * kf)) * (mu - (2.0 * kf - 1.0) ** 2) * 0.25 * y2
+        d = -2.0 * kf
+        return term, s0 + term, s1 + d * term, s2 + d * d * term, s3 + d * d * d * term
+
+    one, zero = jnp.ones_like(z), jnp.zeros_like(z)
+    _, *s = jax.lax.fori_loop(1, _AVERAGE_TERMS, body, (one, one, zero, zero, zero))
     a = -2.0 * p
     t0 = e * s[0]
     t1 = e * (a * s[0] + s[1])
@@ -326,6 +352,7 @@ def _average_lnz_jet(p, z):
     return t0, t1, t2, t3
 
 
+@jax.jit
 def bessel_transfer_average(p, z):
     """Phase average of T(p, z) for large z: Gamma(p+1/2)^2 (z/2)^(1-2p)/(pi z) [1 + p(p-1)/(2 z^2)
     + ...] = F(eps) (a(N2)/a(N))^2 [1 + O(z^-2)]; exact for p = 1 and p = 2."""
@@ -338,6 +365,7 @@ _LN_ZA = math.log(Z_AVERAGE_START)
 _LN_ZB = math.log(Z_AVERAGE_END)
 
 
+@jax.jit
 def transfer_kernel_lnz(p, z):
     """The kernel used by the memory method and its derivatives in ln z at fixed p.
 
@@ -368,6 +396,7 @@ def transfer_kernel_lnz(p, z):
     return tuple(out)
 
 
+@jax.jit
 def transfer_kernel(p, z):
     """(T, dT/dz) of the phase-averaged kernel ``transfer_kernel_lnz`` (z > 0)."""
     t0, t1, _, _ = transfer_kernel_lnz(p, z)
