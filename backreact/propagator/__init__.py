@@ -70,7 +70,9 @@ def propagator_along(history, cfg) -> dict[str, np.ndarray]:
         )
         plan = mode_plan(spline, out, settings)
         run = eqx.filter_jit(
-            lambda sp, n, mu, ap: exact_propagator(sp, n, plan, ln_mu=mu, prior_variance=ap, settings=settings)
+            lambda sp, n, mu, ap: exact_propagator(
+                sp, n, plan, ln_mu=mu, prior_variance=ap, settings=settings
+            )
         )
         res = run(spline, out, ln_mu, a_prior)
     else:
@@ -80,8 +82,13 @@ def propagator_along(history, cfg) -> dict[str, np.ndarray]:
         n_k = required_k_nodes(spline, n_e, float(pc.modes_per_efold))
         run = eqx.filter_jit(
             lambda sp, n, mu, ap: memory_kernel_propagator(
-                sp, n, end_of_inflation=n_e, ln_mu=mu, prior_variance=ap,
-                modes_per_efold=float(pc.modes_per_efold), n_k=n_k,
+                sp,
+                n,
+                end_of_inflation=n_e,
+                ln_mu=mu,
+                prior_variance=ap,
+                modes_per_efold=float(pc.modes_per_efold),
+                n_k=n_k,
             )
         )
         res = run(spline, out, ln_mu, a_prior)

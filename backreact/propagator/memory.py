@@ -19,8 +19,12 @@ operation, linear in the number of output times. A', A'' are analytic: during in
 the moving limit, A' = (1 - eps) W(N); afterwards by the chain rule through z at fixed p,
 dz/dN = (eps - 1) z. Derivations and measured accuracies: docs/propagator_memory_kernel.md.
 
-The kernel is valid during inflation and in decelerating eras (eps > 1); where the universe
-accelerates again after inflation it is wrong (modes exit a second time) and ``valid`` is False.
+The kernel is valid during inflation and in decelerating eras; where the universe
+accelerates again after inflation it is wrong (modes exit a second time) and ``valid`` is
+False. It already fails as the deceleration ends: against the exact method, A is 6e-2 off at
+eps = 1.3-1.4 and 0.1-0.36 at eps = 1.0-1.3 in a LambdaCDM history (p = 1/(eps - 1) grows and
+no constant-eps kernel describes the approach to acceleration), so ``valid`` requires
+eps > VALID_EPS_MIN = 1.4 after inflation (error <= 2.3e-2 there, measured).
 """
 
 from __future__ import annotations
@@ -36,6 +40,8 @@ from ._history import HistorySpline
 from .special import P_MAX, freeze_factor, local_constant_capped, transfer_kernel_lnz
 
 __all__ = ["KAPPA2", "memory_kernel_propagator", "required_k_nodes"]
+#: Smallest eps after inflation where the kernel is trusted (see the module docstring).
+VALID_EPS_MIN = 1.4
 
 KAPPA2 = 0.2506
 """Second-order slow-roll reduction of the frozen amplitude, (1 - KAPPA2 eps_N) (DESIGN 2.3.3)."""
@@ -219,7 +225,8 @@ def memory_kernel_propagator(
     times (lax.map with rematerialization), which bounds the memory of reverse-mode gradients.
 
     Returns arrays of shape (T,): "A", "dA" (dA/dN), "d2A", "box" (Box A = -H^2 (A'' + (3 - eps) A')),
-    "valid" (False after inflation wherever eps <= 1), and the parts "memory" (the s-integral)
+    "valid" (False after inflation wherever eps <= VALID_EPS_MIN = 1.4), and the parts "memory"
+    (the s-integral)
     and "local" (A_loc).
     """
     n = jnp.asarray(efolds, dtype=float)
@@ -283,5 +290,5 @@ def memory_kernel_propagator(
     da = dmem + dloc
     d2a = d2mem + d2loc
     box = -jnp.exp(2.0 * lnh) * (d2a + (3.0 - eps) * da)
-    valid = inflating | (eps > 1.0)
+    valid = inflating | (eps > VALID_EPS_MIN)
     return {"A": a, "dA": da, "d2A": d2a, "box": box, "valid": valid, "memory": mem, "local": loc}

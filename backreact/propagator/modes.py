@@ -52,7 +52,12 @@ from ._history import HistorySpline
 # that by (2 pi/dlnk)^2; a polynomial smoothstep (finite smoothness) leaves ~1e-2 relative
 # errors in A'', a C-infinity one ~1e-7 (measured in de Sitter).
 _X_SUB = (1.5, 12.0)  # s(x): subtraction of the adiabatic vacuum B4 switches on
-_X_TAPER = (6.0, 28.0)  # w(x): the standing-wave interference switches off
+_X_TAPER = (6.0, 28.0)  # w(x): vacuum modes before their first exit: direct -> phase average
+# Re-entered modes carry standing waves whose phase changes by ~2x dlnk/(eps - 1) between
+# neighbouring k nodes; sampled at dlnk = 0.05 they alias above x ~ 6. Their interference
+# is therefore averaged away earlier, between x = 2 and 6, where the WKB envelope is
+# already accurate (exact for radiation, V = 0; O((V/k^2)^2) ~ 1e-3 at x = 3 in matter).
+_X_TAPER_REENTERED = (2.0, 6.0)
 
 
 # Stage 2 saves at up to every output time (frozen modes are followed to the end):
@@ -69,7 +74,7 @@ class ModeSettings(eqx.Module):
     stop_x: float = eqx.field(static=True, default=30.0)
     rtol: float = eqx.field(static=True, default=1e-10)
     atol: float = eqx.field(static=True, default=1e-12)
-    k_margin: float = eqx.field(static=True, default=math.log(12.0))
+    k_margin: float = eqx.field(static=True, default=math.log(40.0))
 
 
 def _smoothstep(y):
@@ -90,7 +95,10 @@ def _smoothstep_np(y):
 def _weights(lnx):
     s = _smoothstep((lnx - math.log(_X_SUB[0])) / math.log(_X_SUB[1] / _X_SUB[0]))
     w = 1.0 - _smoothstep((lnx - math.log(_X_TAPER[0])) / math.log(_X_TAPER[1] / _X_TAPER[0]))
-    return s, w
+    w_re = 1.0 - _smoothstep(
+        (lnx - math.log(_X_TAPER_REENTERED[0])) / math.log(_X_TAPER_REENTERED[1] / _X_TAPER_REENTERED[0])
+    )
+    return s, w, w_re
 
 
 def _sub_constants():
@@ -243,7 +251,9 @@ def _mode_taylor(u, up, x, eps, deps, t):
     return ut, upt
 
 
-def _functional(t, n, spline, lnk, q, qp, scale2, in_window, after_stop, pre_exit, e_stop, ln_mu, ln_kir, weights):
+def _functional(
+    t, n, spline, lnk, q, qp, scale2, in_window, after_stop, pre_exit, e_stop, ln_mu, ln_kir, weights
+):
     """Renormalized A at time n + t (t = 0 is the output time; differentiated in t).
 
     q, qp: scaled mode data at n (q = u sqrt(2k) a_a); scale2 = ln(k^2/(2 a_a^2)) per mode.
@@ -258,7 +268,8 @@ def _functional(t, n, spline, lnk, q, qp, scale2, in_window, after_stop, pre_exi
     lnx = lnk - m - lnh
     x = jnp.exp(lnx)
     c = 2.0 - eps
-    s, w = _weights(lnx)
+    s, w_vac, w_re = _weights(lnx)
+    w = jnp.where(pre_exit, w_vac, w_re)
     # Q = (3 V^2 - V_etaeta)/(a^4 H^4) with V = (2 - eps) a^2 H^2
     lah = m + lnh
 
@@ -388,14 +399,27 @@ def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSett
     def one(lnk_j, na, n1, n2, hand):
         q0, qp0 = _wkb_initial(spline, lnk_j, na)
         (qr, qi, pr, pi), idx1, ok1, (qr1, qi1, pr1, pi1) = _saved(
-            _complex_rhs, na, n1, (q0.real, q0.imag, qp0.real, qp0.imag), out_n, plan.saves1,
-            (spline, lnk_j), settings,
+            _complex_rhs,
+            na,
+            n1,
+            (q0.real, q0.imag, qp0.real, qp0.imag),
+            out_n,
+            plan.saves1,
+            (spline, lnk_j),
+            settings,
         )
         qh = qr1 + 1j * qi1
         ph = pr1 + 1j * pi1
         r = (ph / qh).real
         (g, gp), idx2, ok2, (g2, gp2) = _saved(
-            _real_rhs, n1, n2, (jnp.ones(()), r), out_n, plan.saves2, (spline, lnk_j), settings,
+            _real_rhs,
+            n1,
+            n2,
+            (jnp.ones(()), r),
+            out_n,
+            plan.saves2,
+            (spline, lnk_j),
+            settings,
             STAGE2_SOLVER,
         )
         amp = jnp.abs(qh)
