@@ -137,12 +137,15 @@ _TODAY_ROWS: tuple[tuple[str, str, str], ...] = (
     ("hubble_end_of_inflation_GeV", "H at end of inflation", "GeV"),
     ("hubble_at_pivot_exit_GeV", f"H at pivot exit (k = {constants.PIVOT_K_MPC:g}/Mpc)", "GeV"),
     ("tensor_to_scalar_ratio", "tensor-to-scalar ratio r", ""),
+    ("propagator_GeV2", "spectator variance A = <sigma^2> today", "GeV^2"),
 )
 
 # (key in diagnostics, label, unit)
 _DIAGNOSTIC_ROWS: tuple[tuple[str, str, str], ...] = (
     ("slow_roll_n_s", "slow-roll n_s", ""),
     ("slow_roll_r", "slow-roll r", ""),
+    ("propagator_method", "propagator method", ""),
+    ("propagator_seconds", "propagator time (incl. compilation)", "s"),
 )
 
 _R_KEYS = {"tensor_to_scalar_ratio", "slow_roll_r"}

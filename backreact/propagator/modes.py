@@ -387,6 +387,45 @@ def _scatter(values, idx, ok, size, fill):
     return out.at[jnp.where(ok, idx, size)].set(values, mode="drop")
 
 
+def _mode_history(spline, out_n, plan, settings, lnk_j, na, n1, n2, hand):
+    """One mode: stage 1 (complex) to n1, stage 2 (real) to n2 if ``hand``; data at out_n."""
+    size = out_n.shape[0]
+    q0, qp0 = _wkb_initial(spline, lnk_j, na)
+    (qr, qi, pr, pi), idx1, ok1, (qr1, qi1, pr1, pi1) = _saved(
+        _complex_rhs,
+        na,
+        n1,
+        (q0.real, q0.imag, qp0.real, qp0.imag),
+        out_n,
+        plan.saves1,
+        (spline, lnk_j),
+        settings,
+    )
+    qh = qr1 + 1j * qi1
+    ph = pr1 + 1j * pi1
+    r = (ph / qh).real
+    (g, gp), idx2, ok2, (g2, gp2) = _saved(
+        _real_rhs,
+        n1,
+        n2,
+        (jnp.ones(()), r),
+        out_n,
+        plan.saves2,
+        (spline, lnk_j),
+        settings,
+        STAGE2_SOLVER,
+    )
+    amp = jnp.abs(qh)
+    ok2 = ok2 & hand & (out_n[jnp.clip(idx2, 0, size - 1)] > n1)
+    q = _scatter(qr + 1j * qi, idx1, ok1, size, 0j)
+    p = _scatter(pr + 1j * pi, idx1, ok1, size, 0j)
+    q = jnp.where(_scatter(ok2, idx2, ok2, size, False), _scatter(amp * g + 0j, idx2, ok2, size, 0j), q)
+    p = jnp.where(_scatter(ok2, idx2, ok2, size, False), _scatter(amp * gp + 0j, idx2, ok2, size, 0j), p)
+    qb = jnp.where(hand, amp * g2 + 0j, qh)
+    pb = jnp.where(hand, amp * gp2 + 0j, ph)
+    return q, p, qb, pb
+
+
 def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSettings, oracle: bool = False):
     """Integrate every mode and return its data at the output times ``out_n`` (T,)."""
     n_k = plan.n_k
@@ -394,43 +433,9 @@ def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSett
         spline, out_n, n_k, settings, oracle
     )
     n_last = spline.efolds[-1]
-    size = out_n.shape[0]
 
     def one(lnk_j, na, n1, n2, hand):
-        q0, qp0 = _wkb_initial(spline, lnk_j, na)
-        (qr, qi, pr, pi), idx1, ok1, (qr1, qi1, pr1, pi1) = _saved(
-            _complex_rhs,
-            na,
-            n1,
-            (q0.real, q0.imag, qp0.real, qp0.imag),
-            out_n,
-            plan.saves1,
-            (spline, lnk_j),
-            settings,
-        )
-        qh = qr1 + 1j * qi1
-        ph = pr1 + 1j * pi1
-        r = (ph / qh).real
-        (g, gp), idx2, ok2, (g2, gp2) = _saved(
-            _real_rhs,
-            n1,
-            n2,
-            (jnp.ones(()), r),
-            out_n,
-            plan.saves2,
-            (spline, lnk_j),
-            settings,
-            STAGE2_SOLVER,
-        )
-        amp = jnp.abs(qh)
-        ok2 = ok2 & hand & (out_n[jnp.clip(idx2, 0, size - 1)] > n1)
-        q = _scatter(qr + 1j * qi, idx1, ok1, size, 0j)
-        p = _scatter(pr + 1j * pi, idx1, ok1, size, 0j)
-        q = jnp.where(_scatter(ok2, idx2, ok2, size, False), _scatter(amp * g + 0j, idx2, ok2, size, 0j), q)
-        p = jnp.where(_scatter(ok2, idx2, ok2, size, False), _scatter(amp * gp + 0j, idx2, ok2, size, 0j), p)
-        qb = jnp.where(hand, amp * g2 + 0j, qh)
-        pb = jnp.where(hand, amp * gp2 + 0j, ph)
-        return q, p, qb, pb
+        return _mode_history(spline, out_n, plan, settings, lnk_j, na, n1, n2, hand)
 
     q, qp, qb, pb = jax.vmap(one)(lnk, n_start, n_end1, n_end2, has_hand)
     scale2 = 2.0 * (lnk - n_start) - math.log(2.0)
