@@ -13,7 +13,6 @@ these machines are noisy.
 
 from __future__ import annotations
 
-import math
 import resource
 import statistics
 import sys
@@ -107,7 +106,6 @@ def main(argv):
     slope = np.polyfit(np.log(sizes), np.log(times), 1)[0]
     pts = ", ".join(f"{m}: {t * 1e3:.0f} ms" for m, t in zip(sizes, times))
     print(f"memory kernel vs number of output times ({pts}): fitted exponent {slope:.2f}")
-    del math
 
 
 if __name__ == "__main__":
