@@ -62,7 +62,8 @@ def main(argv):
     t_exact = _timed(exact, sp, out)
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
     print(
-        f"exact method: compile + first run {t_first:7.2f} s, warm run {t_exact:7.3f} s, peak RSS {rss:.2f} GB"
+        f"exact method: compile + first run {t_first:7.2f} s, warm run {t_exact:7.3f} s, "
+        f"peak RSS {rss:.2f} GB"
     )
 
     if "--skip-loop" not in argv:
