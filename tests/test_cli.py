@@ -21,12 +21,17 @@ from backreact import cli, constants
 from backreact.config import all_keys, config_reference_markdown
 from backreact.io import read_run
 
+# The CLI tests exercise the command line, not the physics: no propagator (its own
+# tests are in test_modes.py, test_memory.py and test_run.py), so a run takes seconds.
 SMALL_GRID = """
 [grid]
 points_inflation = 40
 points_reheating = 20
 points_radiation_matter = 60
 points_late = 30
+
+[propagator]
+method = "none"
 """
 
 SMALL = (
