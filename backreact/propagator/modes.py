@@ -75,6 +75,7 @@ class ModeSettings(eqx.Module):
     rtol: float = eqx.field(static=True, default=1e-10)
     atol: float = eqx.field(static=True, default=1e-12)
     k_margin: float = eqx.field(static=True, default=math.log(40.0))
+    chunk: int = eqx.field(static=True, default=64)  # modes per vmap batch (0: all at once)
 
 
 def _smoothstep(y):
@@ -426,6 +427,25 @@ def _mode_history(spline, out_n, plan, settings, lnk_j, na, n1, n2, hand):
     return q, p, qb, pb
 
 
+def _chunked_vmap(f, args, chunk):
+    """vmap over modes in consecutive chunks (lax.map over chunks).
+
+    Under one vmap all modes march in lockstep for the longest mode's steps and saves;
+    neighbouring modes (in k) have similar windows, so chunking in k order wastes less.
+    """
+    n = args[0].shape[0]
+    if chunk <= 0 or chunk >= n:
+        return jax.vmap(f)(*args)
+    n_chunks = -(-n // chunk)
+    pad = n_chunks * chunk - n
+
+    def padded(a):
+        return jnp.concatenate([a, jnp.repeat(a[-1:], pad, axis=0)]).reshape((n_chunks, chunk) + a.shape[1:])
+
+    out = jax.lax.map(lambda xs: jax.vmap(f)(*xs), tuple(padded(a) for a in args))
+    return tuple(o.reshape((n_chunks * chunk,) + o.shape[2:])[:n] for o in out)
+
+
 def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSettings, oracle: bool = False):
     """Integrate every mode and return its data at the output times ``out_n`` (T,)."""
     n_k = plan.n_k
@@ -437,7 +457,7 @@ def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSett
     def one(lnk_j, na, n1, n2, hand):
         return _mode_history(spline, out_n, plan, settings, lnk_j, na, n1, n2, hand)
 
-    q, qp, qb, pb = jax.vmap(one)(lnk, n_start, n_end1, n_end2, has_hand)
+    q, qp, qb, pb = _chunked_vmap(one, (lnk, n_start, n_end1, n_end2, has_hand), settings.chunk)
     scale2 = 2.0 * (lnk - n_start) - math.log(2.0)
     in_window = (out_n[None, :] >= n_start[:, None]) & (out_n[None, :] <= n_stop[:, None])
     after_stop = (out_n[None, :] > n_stop[:, None]) & (n_stop[:, None] < n_last)
