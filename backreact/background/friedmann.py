@@ -38,6 +38,7 @@ import math
 
 import diffrax
 import equinox as eqx
+import numpy as np
 import optimistix as optx
 
 from .. import constants as C
@@ -63,7 +64,7 @@ _REHEAT_TAIL = 3.0
 _INSTANT_TAIL = 1.0
 # Fraction of the late-segment points placed before today (the rest run into the future).
 _PAST_FRACTION = 0.8
-_GL_X, _GL_W = (jnp.asarray(v) for v in __import__("numpy").polynomial.legendre.leggauss(8))
+_GL_X, _GL_W = (jnp.asarray(v) for v in np.polynomial.legendre.leggauss(8))
 
 
 class ThermalArrays(eqx.Module):
@@ -198,8 +199,6 @@ def _clustered(u, span, cluster):
 
 
 def _uniform(n, include_first):
-    import numpy as np
-
     return jnp.asarray(
         np.arange(0 if include_first else 1, n + (0 if include_first else 1))
         / (n - 1 if include_first else n)
@@ -336,9 +335,7 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
     n_end = lm["n_end"]
     rho_l = model.rho_lambda
 
-    def rho_m(n):  # matter appears at the end of reheating (module docstring)
-        return jnp.zeros_like(n)
-
+    # Matter is absent here: it appears at the end of reheating (module docstring).
     # ---- inflation
     if model.profile is not None:
         prof = model.profile
@@ -354,12 +351,12 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
         rho_phi = 3.0 * jnp.exp(2.0 * (lnh0 - prof.integrated_epsilon(inf_nodes)))
         p_phi = rho_phi * (-1.0 + 2.0 * eps_phi / 3.0)
         rq = rho_q[:ni]
-        rho_tot = rho_phi + rho_m(inf_nodes) + rho_l + rq
+        rho_tot = rho_phi + rho_l + rq
         p_tot = p_phi - rho_l + p_q[:ni]
 
         def hubble_inf(n):
             e_int = prof.integrated_epsilon(n)
-            return jnp.sqrt((3.0 * jnp.exp(2.0 * (lnh0 - e_int)) + rho_m(n) + rho_l + sq(n)) / 3.0)
+            return jnp.sqrt((3.0 * jnp.exp(2.0 * (lnh0 - e_int)) + rho_l + sq(n)) / 3.0)
 
         t_inf = _cumulative_quad(lambda n: 1.0 / hubble_inf(n), inf_nodes)
         inf = {"rho_phi": rho_phi, "rho_tot": rho_tot, "p_tot": p_tot, "t": t_inf, "field": None}
@@ -379,10 +376,9 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
         nodes_a = jnp.concatenate([inf_nodes, rh_nodes])
         sq, sqp = _spectator_interp(nodes_a, rho_q[: ni + nr], p_q[: ni + nr])
 
-        def other(n):
+        def other(n):  # Lambda and the spectator, in V0 units: (rho, rho + p)
             r, p = sqp(n)
-            rm = rho_m(n)
-            return (rm + rho_l + r) / v0, (rm + r + p) / v0
+            return (rho_l + r) / v0, (r + p) / v0
 
         def rhs(m, y, args):
             phi, dphi, t = y
@@ -406,7 +402,6 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
         t_inf = (tt - tt[0]) / jnp.sqrt(v0)
         # end-of-inflation state and the slope of the inflaton's w there
         h2e = h2[-1]
-        eps_phi_e = 0.5 * dphi[-1] ** 2 * v0 * h2e / rho_phi[-1] * 3.0 / 3.0
         w_end = p_phi[-1] / rho_phi[-1]
         # d w_phi/dn from the field equation: w = (K - V)/(K + V), K = H^2 phi'^2/2
         ddphi = -(3.0 - 0.5 * dphi[-1] ** 2) * dphi[-1] - dv[-1] / h2e
@@ -415,7 +410,6 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
         dpot = dv[-1] * dphi[-1]
         tot = kin + v[-1]
         dw_end = 2.0 * (dkin * v[-1] - kin * dpot) / tot**2
-        del eps_phi_e
         rho_e = rho_phi[-1]
         t_end = t_inf[-1]
         inf = {"rho_phi": rho_phi, "rho_tot": rho_tot, "p_tot": p_tot, "t": t_inf, "field": phi}
@@ -448,7 +442,7 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
 
         def hubble_rh(n):
             r_phi, _, r_rad, _, _ = components(n)
-            return jnp.sqrt((r_phi + r_rad + rho_m(n) + rho_l + sq(n)) / 3.0)
+            return jnp.sqrt((r_phi + r_rad + rho_l + sq(n)) / 3.0)
 
         r_phi, pphi, r_rad, p_rad, lnT = components(rh_nodes)
         t_rh = (
@@ -464,7 +458,7 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
             r_phi = jnp.exp(lnphi)
             r_rad = jnp.exp(lnr)
             rq_, pq_ = sqp(n)
-            h = jnp.sqrt((r_phi + r_rad + rho_m(n) + rho_l + rq_) / 3.0)
+            h = jnp.sqrt((r_phi + r_rad + rho_l + rq_) / 3.0)
             return r_phi, r_rad, one_w, h, lns
 
         def rhs(n, y, args):
@@ -476,7 +470,7 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
 
         # Radiation starts on the quasi-static attractor of rho_r' = -4 rho_r + (Gamma/H) rho_phi
         # for w_phi = -1/3 (rho_r = (Gamma/H)/3 rho_phi); see docs/physics.md.
-        h_e = jnp.sqrt((rho_e + rho_m(n_end) + rho_l + sq(n_end)) / 3.0)
+        h_e = jnp.sqrt((rho_e + rho_l + sq(n_end)) / 3.0)
         lnr_seed = jnp.log(rho_e * gamma / h_e / 3.0)
         lnS0 = model.thermal.lns_of_lnrho(lnr_seed) + 3.0 * n_end
         sol = _ode(rhs, n_end, rh_nodes[-1], (jnp.log(rho_e), lnS0, t_end), rh_nodes, model)
@@ -490,7 +484,7 @@ def _phase_a(model: ExpansionModel, lm, rho_q, p_q):
         lnT = model.thermal.ln_temperature(lns)
         lnS = lnS_n[-1]
         t_rh = t_n
-    rho_tot_rh = r_phi + r_rad + rho_m(rh_nodes) + rho_l + rq_rh
+    rho_tot_rh = r_phi + r_rad + rho_l + rq_rh
     p_tot_rh = pphi + p_rad - rho_l + pq_rh
     n0_new = (lnS - model.lns_today) / 3.0
     return {
