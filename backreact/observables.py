@@ -81,11 +81,11 @@ def tensor_to_scalar_ratio(hubble_gev: float) -> float:
     return 2.0 * (hubble_gev / C.REDUCED_PLANCK_MASS_GEV) ** 2 / (math.pi**2 * C.PLANCK_AS)
 
 
-def today_summary(history, cfg) -> dict[str, float]:
-    """Scalars of the ``today`` group."""
+def today_summary(history, cfg, datasets: dict[str, np.ndarray] | None = None) -> dict[str, float]:
+    """Scalars of the ``today`` group (``datasets``: the history's datasets, if already made)."""
     mp = C.REDUCED_PLANCK_MASS_GEV
     i0 = today_index(history)
-    ds = history_datasets(history)
+    ds = datasets if datasets is not None else history_datasets(history)
     h0 = float(ds["hubble_km_s_Mpc"][i0])
     out = {
         "H0_km_s_Mpc": h0,

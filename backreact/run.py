@@ -77,7 +77,7 @@ def run_scenario(cfg: Config) -> RunResult:
     elapsed = time.perf_counter() - t0
     _check_finite(history)
     datasets = history_datasets(history)
-    today = today_summary(history, cfg)
+    today = today_summary(history, cfg, datasets)
     t1 = time.perf_counter()
     prop = propagator_along(history, cfg)
     prop_seconds = time.perf_counter() - t1

@@ -229,26 +229,15 @@ def _wkb_initial(spline, lnk, n):
 
 
 def _mode_taylor(u, up, x, eps, deps, t):
-    """u(N+t), u'(N+t) to third order in t from the mode equation (exact derivatives)."""
+    """u(N+t) and u'(N+t) as polynomials in t from the mode equation, exact to second order
+    in t: all that A' and A'' at t = 0 need (|u|^2, |u'|^2 and |u + u'|^2 take their second
+    t-derivative from u, u', u'' and the third derivative of u)."""
     x2 = x * x
     upp = -(3.0 - eps) * up - x2 * u
     # (x^2)' = -2 (1 - eps) x^2
     uppp = deps * up - (3.0 - eps) * upp + 2.0 * (1.0 - eps) * x2 * u - x2 * up
-    # u'''' for the third-order continuation of u'
-    # differentiate u''' = eps' u' - (3 - eps) u'' + 2 (1 - eps) x^2 u - x^2 u'; eps'' dropped (its
-    # contribution to A'' enters through u' only at third order in t)
-    upppp = (
-        deps * upp
-        + deps * upp
-        - (3.0 - eps) * uppp
-        - 2.0 * deps * x2 * u
-        - 4.0 * (1.0 - eps) ** 2 * x2 * u
-        + 2.0 * (1.0 - eps) * x2 * up
-        + 2.0 * (1.0 - eps) * x2 * up
-        - x2 * upp
-    )
-    ut = u + up * t + upp * t**2 / 2 + uppp * t**3 / 6
-    upt = up + upp * t + uppp * t**2 / 2 + upppp * t**3 / 6
+    ut = u + up * t + upp * t**2 / 2
+    upt = up + upp * t + uppp * t**2 / 2
     return ut, upt
 
 
@@ -420,8 +409,9 @@ def _mode_history(spline, out_n, plan, settings, lnk_j, na, n1, n2, hand):
     ok2 = ok2 & hand & (out_n[jnp.clip(idx2, 0, size - 1)] > n1)
     q = _scatter(qr + 1j * qi, idx1, ok1, size, 0j)
     p = _scatter(pr + 1j * pi, idx1, ok1, size, 0j)
-    q = jnp.where(_scatter(ok2, idx2, ok2, size, False), _scatter(amp * g + 0j, idx2, ok2, size, 0j), q)
-    p = jnp.where(_scatter(ok2, idx2, ok2, size, False), _scatter(amp * gp + 0j, idx2, ok2, size, 0j), p)
+    in2 = _scatter(ok2, idx2, ok2, size, False)  # output times covered by stage 2
+    q = jnp.where(in2, _scatter(amp * g + 0j, idx2, ok2, size, 0j), q)
+    p = jnp.where(in2, _scatter(amp * gp + 0j, idx2, ok2, size, 0j), p)
     qb = jnp.where(hand, amp * g2 + 0j, qh)
     pb = jnp.where(hand, amp * gp2 + 0j, ph)
     return q, p, qb, pb
