@@ -12,6 +12,9 @@
   = [Gamma(p + 1/2) (z/2)^(1/2 - p) J_(p - 1/2)(z)]^2, the uniform Bessel kernel of a frozen mode
   in an era of constant eps > 1 (p = 1/(eps - 1), z = p k/(aH)); ``transfer_kernel`` is the same
   function replaced smoothly by its phase average above z = Z_AVERAGE_START.
+- ``kernel_coefficients`` / ``kernel_jet_rows``: ``transfer_kernel_lnz`` at many z for one p,
+  with what depends on p alone computed once (the memory sum's inner loop); the reference
+  functions above stay as they are and the tests compare the two.
 
 Everything goes through gammaln/digamma: Gamma(nu)^2 overflows for eps > 0.994. The derivations
 and measured accuracies are in docs/propagator_memory_kernel.md.
@@ -21,6 +24,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 from jax.scipy.special import digamma, gammaln
 
 from .._jax import jax, jnp
@@ -28,11 +32,14 @@ from .._jax import jax, jnp
 __all__ = [
     "LOCAL_EPS_MAX",
     "P_MAX",
+    "P_MIN",
     "Z_AVERAGE_END",
     "Z_AVERAGE_START",
     "bessel_transfer",
     "bessel_transfer_average",
     "freeze_factor",
+    "kernel_coefficients",
+    "kernel_jet_rows",
     "local_constant",
     "local_constant_capped",
     "log_freeze_factor",
@@ -43,6 +50,8 @@ __all__ = [
 
 P_MAX = 25.0
 """Cap of the kernel index p = 1/(eps - 1) (it diverges as eps -> 1+)."""
+P_MIN = 0.5
+"""Floor of p: eps <= 3 (w <= 1, kination) in every history of canonical matter."""
 LOCAL_EPS_MAX = 0.4
 """The local part uses c(min(eps, LOCAL_EPS_MAX)): c has a pole at eps = 1/2."""
 Z_AVERAGE_START = 30.0
@@ -402,3 +411,136 @@ def transfer_kernel(p, z):
     t0, t1, _, _ = transfer_kernel_lnz(p, z)
     z = jnp.asarray(z, dtype=float)
     return t0, t1 / z
+
+
+# ------------------------------------------------------------------ T(p, z), many z at one p
+#
+# The memory sum evaluates the kernel at many ln z for each output time, all at the same p.
+# ``kernel_coefficients`` hoists everything that depends on p alone (series, Hankel and average
+# coefficients, the gammaln prefactors) out of the per-node work, and ``kernel_jet_rows``
+# evaluates the same branches as ``transfer_kernel_lnz`` from them with Horner's rule (no
+# division or loop-carried state per node). It is the same function as the reference; only the
+# order of the floating-point operations differs (tests/test_propagator_special.py compares).
+
+
+def kernel_coefficients(p):
+    """The p-dependent coefficients of ``transfer_kernel_lnz`` (arrays of shape p.shape + (n,)).
+
+    "gamma": g = 0F1(; p + 1/2; -w/4) = sum_n gamma_n w^n (w = z^2, 64 terms); "hankel_p",
+    "hankel_q": P = sum_i hankel_p_i z^(-2i), Q = sum_i hankel_q_i z^(-2i-1) (Hankel expansion of
+    J_(p-1/2), 24 terms); "average": M^2 series c_k of <T> = exp(ln_e0) z^(-2p) sum_k c_k z^(-2k)
+    (10 terms, DLMF 10.18.17); "ln_gamma" = ln Gamma(p + 1/2); "ln_e0".
+    """
+    p = jnp.asarray(p, dtype=float)
+    b = p[..., None] + 0.5
+    n = jnp.arange(1, _SERIES_TERMS, dtype=float)
+    one = jnp.ones(p.shape + (1,))
+    gamma = jnp.concatenate([one, jnp.cumprod(-0.25 / (n * (b + n - 1.0)), axis=-1)], axis=-1)
+    nu = p[..., None] - 0.5
+    mu = 4.0 * nu * nu
+    k = jnp.arange(1, _HANKEL_TERMS, dtype=float)
+    a = jnp.concatenate([one, jnp.cumprod((mu - (2.0 * k - 1.0) ** 2) / (8.0 * k), axis=-1)], axis=-1)
+    sign = np.where((np.arange(_HANKEL_TERMS) // 2) % 2 == 0, 1.0, -1.0)
+    a = a * sign
+    k = jnp.arange(1, _AVERAGE_TERMS, dtype=float)
+    c = (2.0 * k - 1.0) / (2.0 * k) * (mu - (2.0 * k - 1.0) ** 2) * 0.25
+    average = jnp.concatenate([one, jnp.cumprod(c, axis=-1)], axis=-1)
+    ln_gamma = gammaln(p + 0.5)
+    return {
+        "gamma": gamma,
+        "hankel_p": a[..., 0::2],
+        "hankel_q": a[..., 1::2],
+        "average": average,
+        "ln_gamma": ln_gamma,
+        "ln_e0": 2.0 * ln_gamma + 2.0 * (p - 0.5) * _LN_2 - _LN_PI,
+    }
+
+
+def _horner_rows(coefs, x):
+    """Polynomials sum_i coefs[m][..., i] x^i for several coefficient arrays m at once (one loop).
+
+    ``coefs``: arrays of shape B + (n,) (same n); ``x``: shape B + (L,). Returns a tuple.
+    """
+    n = coefs[0].shape[-1]
+    c = jnp.stack(coefs, axis=0)[..., None]  # (m,) + B + (n, 1)
+
+    def body(i, acc):
+        return acc * x + jax.lax.dynamic_index_in_dim(c, n - 2 - i, axis=-2, keepdims=False)
+
+    acc = jax.lax.fori_loop(0, n - 1, body, jnp.broadcast_to(c[..., n - 1, :], (len(coefs),) + x.shape))
+    return tuple(acc)
+
+
+def kernel_jet_rows(co, p, lam, order: int = 2):
+    """(K, dK/dlnz, ...) up to ``order`` (<= 3) of ``transfer_kernel_lnz`` at ln z = ``lam``.
+
+    ``p`` has shape B, ``lam`` shape B + (L,) (L values of ln z per p), ``co`` =
+    ``kernel_coefficients(p)``. Same branches as the reference: power series for z <= 12 + p,
+    Hankel expansion above, phase average for z >= Z_AVERAGE_END, C^3 blend in between.
+    """
+    pe = p[..., None]
+    nu = pe - 0.5
+    lam_e = jnp.minimum(lam, _LN_ZB)
+    z = jnp.exp(lam_e)
+    z2 = z * z
+    zsw = _SERIES_ZMAX_OFFSET + pe
+    use_series = z <= zsw
+    ws = jnp.minimum(z, zsw) ** 2
+    nn = np.arange(_SERIES_TERMS, dtype=float)
+    gs, g1s = _horner_rows((co["gamma"], co["gamma"] * (2.0 * nn)), ws)
+
+    lam_h = jnp.maximum(lam_e, jnp.log(zsw))
+    zh = jnp.exp(lam_h)
+    y = 1.0 / zh
+    y2 = y * y
+    ii = np.arange(co["hankel_p"].shape[-1], dtype=float)
+    hp, hq = co["hankel_p"], co["hankel_q"]
+    big_p, big_q, p1, q1 = _horner_rows((hp, hq, hp * (-2.0 * ii), hq * (-(2.0 * ii + 1.0))), y2)
+    big_q = y * big_q
+    q1 = y * q1
+    om = zh - (0.5 * nu + 0.25) * math.pi
+    cs, sn = jnp.cos(om), jnp.sin(om)
+    amp = jnp.sqrt(2.0 / (math.pi * zh))
+    pcqs = big_p * cs - big_q * sn
+    jv = amp * pcqs
+    zjp = amp * (-0.5 * pcqs + p1 * cs - q1 * sn - zh * (big_p * sn + big_q * cs))
+    lead = jnp.exp(co["ln_gamma"][..., None] - nu * (lam_h - _LN_2))
+    g = jnp.where(use_series, gs, lead * jv)
+    g1 = jnp.where(use_series, g1s, lead * (zjp - nu * jv))
+
+    g2 = -2.0 * pe * g1 - z2 * g
+    zt1 = 2.0 * g * g1
+    z2t2 = 2.0 * (g1 * g1 + g * g2)
+    ex = [g * g, zt1, zt1 + z2t2]
+    if order >= 3:
+        g3 = 2.0 * pe * g1 - 2.0 * pe * g2 - z2 * g1
+        ex.append(zt1 + 3.0 * z2t2 + 2.0 * (3.0 * g1 * g2 + g * g3))
+
+    lam_a = jnp.maximum(lam, _LN_ZA)
+    y2a = jnp.exp(-2.0 * lam_a)
+    e = jnp.exp(co["ln_e0"][..., None] - 2.0 * pe * lam_a)
+    kk = np.arange(_AVERAGE_TERMS, dtype=float)
+    s = _horner_rows(tuple(co["average"] * (-2.0 * kk) ** j for j in range(order + 1)), y2a)
+    a = -2.0 * pe
+    av = [e * s[0], e * (a * s[0] + s[1]), e * (a * a * s[0] + 2.0 * a * s[1] + s[2])]
+    if order >= 3:
+        av.append(e * (a**3 * s[0] + 3.0 * a * a * s[1] + 3.0 * a * s[2] + s[3]))
+
+    delta = _LN_ZB - _LN_ZA
+    u = jnp.clip((lam - _LN_ZA) / delta, 0.0, 1.0)
+    v = 1.0 - u
+    sw = (
+        u**4 * (35.0 - 84.0 * u + 70.0 * u * u - 20.0 * u**3),
+        140.0 * (u * v) ** 3 / delta,
+        420.0 * (u * v) ** 2 * (1.0 - 2.0 * u) / delta**2,
+        840.0 * u * v * (5.0 * u * u - 5.0 * u + 1.0) / delta**3,
+    )
+    d = [av[n] - ex[n] for n in range(order + 1)]
+    binom = ((1,), (1, 1), (1, 2, 1), (1, 3, 3, 1))
+    out = []
+    for n in range(order + 1):
+        acc = ex[n]
+        for i in range(n + 1):
+            acc = acc + binom[n][i] * sw[i] * d[n - i]
+        out.append(acc)
+    return tuple(out)
