@@ -93,6 +93,10 @@ HISTORY_DATASETS: dict[str, tuple[str, str]] = {
     "box_propagator": ("GeV^4", "d'Alembertian of the coincident propagator"),
     "kinetic_sum": ("GeV^4", "coincident kinetic term of the spectator field"),
     "gradient_sum": ("GeV^4", "coincident gradient term of the spectator field"),
+    "kinetic_invariant": (
+        "GeV^4",
+        "renormalized <g^{mu nu} d_mu sigma d_nu sigma>, summed on its own (Box A = 2 (it + L))",
+    ),
     "pressure_spectator": ("GeV^4", "pressure of the spectator field"),
     "w_spectator": ("1", "equation of state of the spectator field, p / rho"),
     "closure_validity": ("1", "validity measure of the closure used for the spectator source"),

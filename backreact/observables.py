@@ -148,6 +148,8 @@ def propagator_datasets(prop: dict) -> dict[str, np.ndarray]:
         "propagator_dNdN": prop["d2A"] * mp**2,
         "box_propagator": prop["box"] * mp**4,
     }
+    if "kinetic" in prop:
+        out["kinetic_invariant"] = prop["kinetic"] * mp**4
     if "valid" in prop:
         out["kernel_valid"] = np.asarray(prop["valid"], dtype=float)
     return out

@@ -22,15 +22,20 @@ docs/physics.md). Recipe (DESIGN 2.3.4):
 4. After the stop a mode is deep inside: its Bogoliubov envelope
    E = |alpha|^2 + |beta|^2 = (W^2 |v|^2 + |v_eta|^2)/W (v = a u, W^2 = k^2 - a''/a) is an
    adiabatic invariant, and its phase-averaged |u|^2 = E/(2 a^2 W).
-5. k integration at each output time of the renormalized integrand, written so that
-   what is summed on the ln k grid is smooth and decays (no cut-off moving through the
-   grid): the 4th-order adiabatic vacuum B4 is subtracted with a smooth weight s(x)
-   (0 below x = 3, 1 above 6) and added back analytically with the counterterms; the
-   standing-wave interference of modes inside is tapered smoothly to its phase average
-   between x = 8 and 24 (weight w). Composite Simpson in ln k.
+5. k integration at each output time of the renormalized integrand (docs/physics.md 3.1):
+   the adiabatic vacuum B4 is subtracted with a smooth weight s(x) and added back
+   analytically with the counterterms. Until the end of inflation modes are summed directly
+   (composite Simpson in ln k) and blended into B4 at large x. Afterwards each mode is
+   decomposed exactly on the second-order WKB basis into its envelope S (Simpson) and its
+   rotating interference J, whose demodulated amplitude J e^{2 i k eta} is smooth in k and
+   is integrated by Filon quadrature (``_kspace.py``): no aliasing of the standing waves
+   of re-entered modes. After its stop a mode keeps S and its interference rotates with the
+   WKB phase.
 6. A', A'' by exact Taylor-mode differentiation at each output time: per mode, u and u'
-   are continued as a polynomial in N using the mode equation (u'', u''' exactly), the
+   are continued as a polynomial in N using the mode equation (u'' and u''' exactly), the
    history from the spline; no finite differences.
+7. The kinetic sum K = <g^{mu nu} d sigma d sigma> renormalized on its own (same scheme,
+   its own adiabatic terms K2, K4, K6), for the Box identity Box A = 2 (K_ren + L).
 
 ``oracle=True`` skips the hand-over (complex modes all the way to the stop): the test
 oracle of DESIGN 2.3.4.
@@ -46,6 +51,7 @@ import numpy as np
 
 from .._jax import jax, jnp
 from ._history import HistorySpline
+from ._kspace import Clocks, _lagrange_to_monomial, filon_weights
 
 # Smooth weights in ln x. They are C-infinity transitions: the sum over a uniform ln k grid
 # of a profile moving with N aliases at the grid frequency 2 pi/dlnk, and A'' amplifies
@@ -53,11 +59,16 @@ from ._history import HistorySpline
 # errors in A'', a C-infinity one ~1e-7 (measured in de Sitter).
 _X_SUB = (1.5, 12.0)  # s(x): subtraction of the adiabatic vacuum B4 switches on
 _X_TAPER = (6.0, 28.0)  # w(x): vacuum modes before their first exit: direct -> phase average
-# Re-entered modes carry standing waves whose phase changes by ~2x dlnk/(eps - 1) between
-# neighbouring k nodes; sampled at dlnk = 0.05 they alias above x ~ 6. Their interference
-# is therefore averaged away earlier, between x = 2 and 6, where the WKB envelope is
-# already accurate (exact for radiation, V = 0; O((V/k^2)^2) ~ 1e-3 at x = 3 in matter).
-_X_TAPER_REENTERED = (2.0, 6.0)
+_X_TAPER_KIN = (6.0, 24.0)  # the same for the kinetic sum (its ODE errors grow like x^4: 1e-5 at 24)
+# Every other mode (exited, re-entered, or after the end of inflation) is summed directly
+# below x ~ 1 and as envelope + interference above (_X_SPLIT), with the WKB frequency
+# switched on between x = 1 and 2 (_X_FREQ). The interference of re-entered modes is a
+# standing wave: it is integrated by Filon quadrature (no aliasing at any phase per step)
+# and phased out between x = 30 and 300 (_X_INTERFERENCE), where its k integral is < 1e-8
+# of the kinetic sum per unit ln k (sum of cos(2x) dx/x beyond the taper, measured).
+_X_SPLIT = (0.5, 2.0)
+_X_FREQ = (1.0, 2.0)
+_X_INTERFERENCE = (30.0, 300.0)
 
 
 # Stage 2 saves at up to every output time (frozen modes are followed to the end):
@@ -91,15 +102,6 @@ def _smoothstep_np(y):
     a = math.exp(-1.0 / y)
     b = math.exp(-1.0 / (1.0 - y))
     return a / (a + b)
-
-
-def _weights(lnx):
-    s = _smoothstep((lnx - math.log(_X_SUB[0])) / math.log(_X_SUB[1] / _X_SUB[0]))
-    w = 1.0 - _smoothstep((lnx - math.log(_X_TAPER[0])) / math.log(_X_TAPER[1] / _X_TAPER[0]))
-    w_re = 1.0 - _smoothstep(
-        (lnx - math.log(_X_TAPER_REENTERED[0])) / math.log(_X_TAPER_REENTERED[1] / _X_TAPER_REENTERED[0])
-    )
-    return s, w, w_re
 
 
 def _sub_constants():
@@ -241,26 +243,27 @@ def _mode_taylor(u, up, x, eps, deps, t):
     return ut, upt
 
 
-def _functional(
-    t, n, spline, lnk, q, qp, scale2, in_window, after_stop, pre_exit, e_stop, ln_mu, ln_kir, weights
-):
-    """Renormalized A at time n + t (t = 0 is the output time; differentiated in t).
+def _step_between(lnx, bounds):
+    """C-infinity step in ln x: 0 below bounds[0], 1 above bounds[1]."""
+    x0, x1 = bounds
+    return _smoothstep((lnx - math.log(x0)) / math.log(x1 / x0))
 
-    q, qp: scaled mode data at n (q = u sqrt(2k) a_a); scale2 = ln(k^2/(2 a_a^2)) per mode.
-    """
-    m = n + t
-    lnh0, eps0 = spline.ln_hubble_and_epsilon(n)
-    deps0 = jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1])(n)
-    x0 = jnp.exp(lnk - n - lnh0)
-    qt, qpt = _mode_taylor(q, qp, x0, eps0, deps0, t)
+
+class _Era(eqx.Module):
+    """The history at one time m (scalars) and what every mode needs of it."""
+
+    lnh: jax.Array
+    eps: jax.Array
+    eps_n: jax.Array
+    lah: jax.Array
+    q_adiabatic: jax.Array  # Q = (3 V^2 - V_etaeta)/(a^4 H^4)
+    eta: jax.Array
+    psi: jax.Array
+
+
+def _era(spline, clocks, m):
     lnh, eps = spline.ln_hubble_and_epsilon(m)
-    h2 = jnp.exp(2.0 * lnh)
-    lnx = lnk - m - lnh
-    x = jnp.exp(lnx)
-    c = 2.0 - eps
-    s, w_vac, w_re = _weights(lnx)
-    w = jnp.where(pre_exit, w_vac, w_re)
-    # Q = (3 V^2 - V_etaeta)/(a^4 H^4) with V = (2 - eps) a^2 H^2
+    eps_n = jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1])(m)
     lah = m + lnh
 
     def vred(z):
@@ -268,37 +271,207 @@ def _functional(
         return (2.0 - ez) * jnp.exp(2.0 * (z + lz - lah))
 
     dv = jax.jacfwd(vred)
-    qq = 3.0 * c * c - ((1.0 - eps) * dv(m) + jax.jacfwd(dv)(m))
-    # per-mode pieces, in units of H^2
-    k3m_h2 = jnp.exp(scale2 - 2.0 * lnh) * jnp.abs(qt) ** 2  # k^3 |u|^2 / H^2
-    vac_h2 = 0.5 * x * x  # k^2/(2 a^2) / H^2
-    x_safe = jnp.maximum(x, 1.0)  # B4 is only used where s > 0 (x > 1.5)
-    b4_h2 = c / 4.0 + qq / (16.0 * x_safe * x_safe)
-    wt = jnp.sqrt(jnp.maximum(x * x - c, 1e-2))  # only used where x > 6
-    # envelope E = (a/a_a)^2 [wt^2 |q|^2 + |q + q'|^2] / (2 x wt), (a/a_a)^2 = ratio
-    ratio = jnp.exp(scale2 - 2.0 * lnh) / vac_h2
-    e_now = ratio * (wt * wt * jnp.abs(qt) ** 2 + jnp.abs(qt + qpt) ** 2) / (2.0 * x * wt)
-    e_eff = jnp.where(in_window, e_now, jnp.where(after_stop, e_stop, 1.0))
-    e_eff = jnp.where(pre_exit, 1.0, e_eff)
-    excit = (x**3 / (2.0 * wt)) * (e_eff - 1.0)
-    direct = jnp.where(in_window, k3m_h2 - vac_h2, 0.0)
-    # The integrand k^3 (M - 1/(2 k a^2)) is blended with its phase average excit + B4 by w
-    # (so standing waves inside are averaged away smoothly), and s B4 is subtracted (added
-    # back analytically with the counterterms):
-    #   w direct + (1 - w)(excit + B4) - s B4 = w direct + (1 - w) excit + (1 - w - s) B4.
-    # Before a mode first exits it is in the adiabatic vacuum: E - 1 is only the error of
-    # the WKB data, which x^3 would amplify, so excit = 0 there (e_eff = 1 above).
-    # Outside its window (x > 28, w = 0, s = 1) only excit remains.
-    r = w * direct + (1.0 - w) * excit + (1.0 - w - s) * b4_h2
-    r = jnp.where(in_window | after_stop, r, 0.0)
-    total = jnp.sum(weights * r) * h2 / (2.0 * jnp.pi**2)
-    local = -(c * h2 / (8.0 * jnp.pi**2)) * (_LAMBDA0 + lnh - ln_mu) + qq * h2 * _LAMBDA2 / (32.0 * jnp.pi**2)
-    ir = -jnp.exp(2.0 * (ln_kir - m)) / (8.0 * jnp.pi**2)
-    return total + local + ir
+    qq = 3.0 * (2.0 - eps) ** 2 - ((1.0 - eps) * dv(m) + jax.jacfwd(dv)(m))
+    eta, psi = clocks.at(m)
+    return _Era(lnh, eps, eps_n, lah, qq, eta, psi)
+
+
+def _kinetic_adiabatic(spline, m):
+    """(Box R/H^4, D_K) at m: the adiabatic kinetic terms per unit ln k in units of H^4,
+    k^3 K4/H^4 = Box R/(48 H^4) and k^3 K6/H^4 = D_K/x^2 (K_n = -(1/2)(d_t^2 + 3 H d_t) M_n)."""
+    lnh_m, eps_m = spline.ln_hubble_and_epsilon(m)
+
+    def rhat(z):  # R/H(m)^2 = 6 (2 - eps) H^2/H(m)^2
+        lz, ez = spline.ln_hubble_and_epsilon(z)
+        return 6.0 * (2.0 - ez) * jnp.exp(2.0 * (lz - lnh_m))
+
+    r1 = jax.jacfwd(rhat)
+    box_r = -(jax.jacfwd(r1)(m) + (3.0 - eps_m) * r1(m))
+
+    lah_m = m + lnh_m
+
+    def g(z):  # Q(z) a^2 H^4 (z), normalized to a^2 H^4 at m
+        lz, ez = spline.ln_hubble_and_epsilon(z)
+        e2 = jnp.exp(2.0 * (z + lz - lah_m))
+
+        def vhat(y):
+            ly, ey = spline.ln_hubble_and_epsilon(y)
+            return (2.0 - ey) * jnp.exp(2.0 * (y + ly - lah_m))
+
+        d1 = jax.jacfwd(vhat)
+        qphys = 3.0 * vhat(z) ** 2 - e2 * (jax.jacfwd(d1)(z) + (1.0 - ez) * d1(z))
+        return qphys * jnp.exp(-2.0 * (z - m))
+
+    g1 = jax.jacfwd(g)
+    d_k = -(jax.jacfwd(g1)(m) + (3.0 - eps_m) * g1(m)) / 32.0
+    return box_r, d_k
+
+
+_X_FREQ2 = (2.0, 4.0)  # the second-order WKB terms of the frequency switch on here
+
+
+def _frequency(spline, lnk, m):
+    """The mode frequency W = aH wt used for the Bogoliubov decomposition, at N = m.
+
+    Second-order WKB (DESIGN 2.3.4), in units of aH(m), with f = k^2 - V:
+        W^2 = f - f_etaeta/(4 f) + (5/16) f_eta^2/f^2,
+    switched on smoothly from the bare x^2 (x < 1) to f (x > 2) and then to the full form
+    (x > 4), and exponentiated (f e^{corr/f} instead of f + corr) so that W^2 > 0 always.
+    In the adiabatic vacuum the instantaneous Bogoliubov coefficients on this basis are then
+    O(x^-6) (O(x^-4) on the first-order one), which is what keeps the non-rotating part of
+    the interference below the Filon quadrature's concern. Returns (x^2 - wt^2, wt^2,
+    d ln W/dN) per mode (the last by forward-mode differentiation in N at fixed k).
+    """
+    lah_ref = m + spline.ln_hubble(m)
+
+    def vred(y):
+        ly, ey = spline.ln_hubble_and_epsilon(y)
+        return (2.0 - ey) * jnp.exp(2.0 * (y + ly - lah_ref))
+
+    v1f = jax.jacfwd(vred)
+    v2f = jax.jacfwd(v1f)
+
+    def squared(z):
+        lz, ez = spline.ln_hubble_and_epsilon(z)
+        lnx_z = lnk - z - lz
+        x2 = jnp.exp(2.0 * (lnk - lah_ref))  # (k/aH(m))^2, fixed in z
+        rho = jnp.exp(2.0 * (z + lz - lah_ref))
+        v, v1, v2 = vred(z), v1f(z), v2f(z)
+        phi1 = _step_between(lnx_z, _X_FREQ)
+        phi2 = _step_between(lnx_z, _X_FREQ2)
+        fr = x2 - v * phi1
+        fs = jnp.maximum(fr, 1e-2 * rho)  # only where phi2 > 0 (there fr > 2 rho)
+        corr = -rho * (-v2 - (1.0 - ez) * v1) / (4.0 * fs) + (5.0 / 16.0) * rho * v1 * v1 / (fs * fs)
+        arg = phi2 * corr / fs
+        return fr * jnp.exp(arg), v * phi1 - fr * jnp.expm1(arg)
+
+    (wt2, d2), (dwt2, _) = jax.jvp(squared, (m,), (jnp.ones_like(m),))
+    return d2, wt2, 0.5 * dwt2 / wt2
+
+
+def _mode_parts(era, lnk, q, qp, scale2, freq):
+    """Per-mode pieces at one time, decomposed on the second-order WKB basis.
+
+    With W = aH wt (``_frequency``) and gamma = W_eta/(4 W^2), the instantaneous Bogoliubov
+    amplitudes A = alpha e^{-i theta}, B = beta e^{i theta} of v = a u follow from (v, v_eta)
+    exactly; then, in units of H^2 (H^4) per unit ln k,
+
+        k^3 |u|^2/H^2      = xw (S + 2 Re J),
+        k^3 K_k/H^4        = xw [(d2 - b^2) S + 2 Re(J (x^2 - b^2 + wt^2 - 2 i b wt))],
+
+    with S = |A|^2 + |B|^2, J = A B*, xw = x^3/(2 wt), b = 1 + 2 gamma wt, d2 = x^2 - wt^2.
+    These identities are exact for any mode and any positive wt; S is the adiabatic-invariant
+    envelope and J the rotating interference. Used where x > _X_SPLIT[0] (x is floored at 0.1).
+    """
+    lnx = lnk - era.lah
+    x = jnp.exp(lnx)
+    xs = jnp.maximum(x, 0.1)
+    d2, wt2, dlnw = freq
+    wt = jnp.sqrt(wt2)
+    gamma = dlnw / (4.0 * wt)
+    ratio = 2.0 * jnp.exp(scale2 - 2.0 * era.lnh) / (xs * xs)  # k^3 |u|^2/H^2 = ratio (x^2/2) |q|^2
+    sig = ratio / (4.0 * xs * wt)
+    root = jnp.sqrt(sig)
+    ap = root * (wt * q + 1j * (q + qp))
+    am = root * (wt * q - 1j * (q + qp))
+    amp_a = (1.0 + 1j * gamma) * ap + 1j * gamma * am
+    amp_b = -1j * gamma * ap + (1.0 - 1j * gamma) * am
+    envelope = jnp.abs(amp_a) ** 2 + jnp.abs(amp_b) ** 2
+    interference = amp_a * jnp.conj(amp_b)
+    return x, xs, wt, d2, gamma, envelope, interference
+
+
+def _integrand(kind, era, xs, wt, d2, gamma, envelope):
+    """The mode's value P S + Re(J G) - sub, split as (excitation P (S - 1), vacuum part P - sub,
+    complex interference coefficient G), with sub = x^2/2 (A) or (1 - eps) x^2/2 (K).
+
+    ``kind`` = "A" (units H^2) or "K" (units H^4). The vacuum part is written without the
+    cancellation of its two terms (it is O(1) while each is O(x^2)).
+    """
+    c = 2.0 - era.eps
+    vac = 0.5 * xs * xs
+    xw = xs**3 / (2.0 * wt)
+    one_minus = d2 / (wt * (xs + wt))  # x/wt - 1
+    if kind == "A":
+        return xw * (envelope - 1.0), vac * one_minus, 2.0 * xw
+    b = 1.0 + 2.0 * gamma * wt
+    vac_part = vac * ((d2 - b * b) * one_minus + d2 - c - 4.0 * gamma * wt * (1.0 + gamma * wt))
+    g = 2.0 * xw * (xs * xs - b * b + wt * wt - 2j * b * wt)
+    return xw * (d2 - b * b) * (envelope - 1.0), vac_part, g
+
+
+def _sums(t, n, ctx, lnk, q, qp, in_window, after_stop, pre_exit, kind):
+    """Renormalized A (kind "A") or K (kind "K") at time n + t (t = 0 is the output time).
+
+    q, qp: scaled mode data at n (q = u sqrt(2k) a_a, scale2 = ln(k^2/(2 a_a^2)) per mode).
+    """
+    spline, clocks = ctx["spline"], ctx["clocks"]
+    m = n + t
+    lnh0, eps0 = spline.ln_hubble_and_epsilon(n)
+    deps0 = jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1])(n)
+    x0 = jnp.exp(lnk - n - lnh0)
+    qt, qpt = _mode_taylor(q, qp, x0, eps0, deps0, t)
+    era = _era(spline, clocks, m)
+    h2 = jnp.exp(2.0 * era.lnh)
+    c = 2.0 - era.eps
+    scale2 = ctx["scale2"]
+    x, xs, wt, d2, gamma, env_now, j_now = _mode_parts(era, lnk, qt, qpt, scale2, _frequency(spline, lnk, m))
+    lnx = lnk - era.lah
+    s = _step_between(lnx, _X_SUB)
+    p = _step_between(lnx, _X_SPLIT)
+    w_int = 1.0 - _step_between(lnx, _X_INTERFERENCE)
+    x_safe = jnp.maximum(x, 1.0)  # the adiabatic terms are only used where s > 0 (x > 1.5)
+    k3m = jnp.exp(scale2 - 2.0 * era.lnh) * jnp.abs(qt) ** 2  # k^3 |u|^2 / H^2
+    if kind == "A":
+        direct = k3m - 0.5 * x * x
+        adiabatic = c / 4.0 + era.q_adiabatic / (16.0 * x_safe * x_safe)  # B4
+        w_vac = 1.0 - _step_between(lnx, _X_TAPER)
+    else:
+        k3up = jnp.exp(scale2 - 2.0 * era.lnh) * jnp.abs(qpt) ** 2  # k^3 |u'|^2 / H^2
+        direct = x * x * k3m - k3up - (1.0 - era.eps) * 0.5 * x * x
+        box_r, d_k = _kinetic_adiabatic(spline, m)
+        adiabatic = box_r / 48.0 + d_k / (x_safe * x_safe)
+        w_vac = 1.0 - _step_between(lnx, _X_TAPER_KIN)
+    # envelope and demodulated interference: in the window from the modes, after the stop
+    # continued from the stop (S is an adiabatic invariant, J rotates with the WKB phase)
+    k = jnp.exp(lnk)
+    y_now = j_now * jnp.exp(2j * k * era.eta)
+    y_cont = ctx["z_stop"] * jnp.exp(-1j * era.psi / k)
+    env = jnp.where(in_window, env_now, ctx["s_stop"])
+    y = jnp.where(in_window, y_now, y_cont)
+    excitation, vac_part, g_int = _integrand(kind, era, xs, wt, d2, gamma, env)
+    live = in_window | after_stop
+    # until the end of inflation: direct, blended into the adiabatic vacuum at large x
+    r_vac = w_vac * direct + (1.0 - w_vac - s) * adiabatic
+    # afterwards, in the window: direct below x ~ 1, envelope + interference above (an exact
+    # identity); the interference is integrated by Filon quadrature and phased out between
+    # x = 30 and 300. After the stop: the excitation on top of the adiabatic vacuum (the
+    # first-order WKB vacuum part differs from the adiabatic one at O(1) in K).
+    r_window = (1.0 - p) * direct + p * (excitation + vac_part) - s * adiabatic
+    r_after = excitation + (1.0 - s) * adiabatic
+    r_other = jnp.where(in_window, r_window, r_after)
+    r = jnp.where(live, jnp.where(pre_exit, r_vac, r_other), 0.0)
+    f_int = jnp.where(live & ~pre_exit, p * w_int * g_int * y / xs, 0.0)
+    tau = jnp.exp(era.lah) * era.eta
+    omega = filon_weights(lnx, tau, ctx["dlnk"], ctx["lmat"])
+    total = jnp.sum(ctx["weights"] * r) + jnp.real(jnp.sum(omega * f_int))
+    ln_kir = ctx["ln_kir"]
+    ln_mu = ctx["ln_mu"]
+    ir_a = jnp.exp(2.0 * (ln_kir - m)) / (8.0 * jnp.pi**2)  # k_IR^2/(8 pi^2 a^2)
+    if kind == "A":
+        local = -(c * h2 / (8.0 * jnp.pi**2)) * (
+            _LAMBDA0 + era.lnh - ln_mu
+        ) + era.q_adiabatic * h2 * _LAMBDA2 / (32.0 * jnp.pi**2)
+        return total * h2 / (2.0 * jnp.pi**2) + local - ir_a
+    h4 = h2 * h2
+    local = -(box_r * h4 / (96.0 * jnp.pi**2)) * (_LAMBDA0 + era.lnh - ln_mu) + d_k * h4 * _LAMBDA2 / (
+        2.0 * jnp.pi**2
+    )
+    return total * h4 / (2.0 * jnp.pi**2) + local - (1.0 - era.eps) * h2 * ir_a
 
 
 class ModeSolution(eqx.Module):
-    """Per-mode data at the output times (scaled; see ``_functional``)."""
+    """Per-mode data at the output times (scaled; see ``_sums``)."""
 
     lnk: jax.Array
     q: jax.Array  # (n_k, T) complex
@@ -307,7 +480,8 @@ class ModeSolution(eqx.Module):
     in_window: jax.Array  # (n_k, T) bool
     after_stop: jax.Array
     pre_exit: jax.Array
-    e_stop: jax.Array  # (n_k,)
+    s_stop: jax.Array  # (n_k,) envelope S at the stop
+    z_stop: jax.Array  # (n_k,) complex: J e^{i(2 k eta + psi/k)} at the stop
 
 
 class ModePlan(eqx.Module):
@@ -450,16 +624,20 @@ def solve_modes(spline: HistorySpline, out_n, plan: ModePlan, settings: ModeSett
     q, qp, qb, pb = _chunked_vmap(one, (lnk, n_start, n_end1, n_end2, has_hand), settings.chunk)
     scale2 = 2.0 * (lnk - n_start) - math.log(2.0)
     in_window = (out_n[None, :] >= n_start[:, None]) & (out_n[None, :] <= n_stop[:, None])
-    after_stop = (out_n[None, :] > n_stop[:, None]) & (n_stop[:, None] < n_last)
-    first_change = jnp.where(jnp.isfinite(n_exit), jnp.minimum(n_exit, n_peak), n_peak)
-    pre_exit = in_window & (out_n[None, :] < first_change[:, None])
-    # envelope at the stop
-    lnh_b, eps_b = spline.ln_hubble_and_epsilon(n_stop)
-    xb = jnp.exp(lnk - n_stop - lnh_b)
-    wtb = jnp.sqrt(jnp.maximum(xb * xb - (2.0 - eps_b), 1e-30))
-    ratio_b = jnp.exp(scale2 - 2.0 * lnh_b) / (0.5 * xb * xb)
-    e_stop = ratio_b * (wtb * wtb * jnp.abs(qb) ** 2 + jnp.abs(qb + pb) ** 2) / (2.0 * xb * wtb)
-    return ModeSolution(lnk, q, qp, scale2, in_window, after_stop, pre_exit, e_stop)
+    # modes that never come within stop_x (the top of the k grid) never start: no continuation
+    reached = n_stop > n_start + 2e-6
+    after_stop = (out_n[None, :] > n_stop[:, None]) & (n_stop[:, None] < n_last) & reached[:, None]
+    # Until the peak of aH (the end of inflation) every mode is either in its vacuum or
+    # outside the horizon with x < 1: summed directly. After it, envelope + interference.
+    pre_exit = in_window & (out_n[None, :] < n_peak)
+    # envelope and phase-free interference at the stop (the Bogoliubov continuation)
+    clocks = Clocks(spline)
+    eras = jax.vmap(lambda m: _era(spline, clocks, m))(n_stop)
+    freq = jax.vmap(lambda lk, m: _frequency(spline, lk, m))(lnk, n_stop)
+    _, _, _, _, _, s_stop, j_stop = jax.vmap(_mode_parts)(eras, lnk, qb, pb, scale2, freq)
+    k = jnp.exp(lnk)
+    z_stop = j_stop * jnp.exp(1j * (2.0 * k * eras.eta + eras.psi / k))
+    return ModeSolution(lnk, q, qp, scale2, in_window, after_stop, pre_exit, s_stop, z_stop)
 
 
 def exact_propagator(
@@ -471,24 +649,46 @@ def exact_propagator(
     prior_variance=0.0,
     settings: ModeSettings = ModeSettings(),
     oracle: bool = False,
+    kinetic: bool = True,
 ):
-    """A, A', A'' and Box A (M_p units) at the output times by the exact method."""
+    """A, A', A'' and Box A (M_p units) at the output times by the exact method.
+
+    With ``kinetic`` (default) also "kinetic" = K_ren = <g^{mu nu} d_mu sigma d_nu sigma>
+    renormalized on its own (DESIGN 2.3.6), "local_box" = L, and so the Box identity
+    Box A = 2 (K_ren + L) can be checked.
+    """
     sol = solve_modes(spline, out_n, plan, settings, oracle)
-    ln_kir = spline.efolds[0] + spline.ln_hubble_nodes[0]
-    weights = _simpson_weights(plan.n_k, 1.0 / settings.modes_per_efold)
+    dlnk = 1.0 / settings.modes_per_efold
+    ctx = {
+        "spline": spline,
+        "clocks": Clocks(spline),
+        "scale2": sol.scale2,
+        "s_stop": sol.s_stop,
+        "z_stop": sol.z_stop,
+        "dlnk": dlnk,
+        "lmat": _lagrange_to_monomial(dlnk),
+        "weights": _simpson_weights(plan.n_k, dlnk),
+        "ln_kir": spline.efolds[0] + spline.ln_hubble_nodes[0],
+        "ln_mu": ln_mu,
+    }
 
     def at_time(n, q, qp, inw, aft, pre):
         def f(t):
-            return _functional(
-                t, n, spline, sol.lnk, q, qp, sol.scale2, inw, aft, pre, sol.e_stop, ln_mu, ln_kir, weights
-            )
+            return _sums(t, n, ctx, sol.lnk, q, qp, inw, aft, pre, "A")
 
         d1 = jax.jacfwd(f)
-        return f(0.0), d1(0.0), jax.jacfwd(d1)(0.0)
+        kin = _sums(0.0, n, ctx, sol.lnk, q, qp, inw, aft, pre, "K") if kinetic else jnp.zeros(())
+        return f(0.0), d1(0.0), jax.jacfwd(d1)(0.0), kin
 
-    a, da, d2a = jax.vmap(at_time, in_axes=(0, 1, 1, 1, 1, 1))(
+    a, da, d2a, kin = jax.vmap(at_time, in_axes=(0, 1, 1, 1, 1, 1))(
         out_n, sol.q, sol.qp, sol.in_window, sol.after_stop, sol.pre_exit
     )
     lnh, eps = spline.ln_hubble_and_epsilon(out_n)
     box = -jnp.exp(2.0 * lnh) * (d2a + (3.0 - eps) * da)
-    return {"A": a + prior_variance, "dA": da, "d2A": d2a, "box": box}
+    out = {"A": a + prior_variance, "dA": da, "d2A": d2a, "box": box}
+    if kinetic:
+        eps_n = jax.vmap(jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1]))(out_n)
+        h4 = jnp.exp(4.0 * lnh)
+        out["kinetic"] = kin
+        out["local_box"] = -(h4 / (16.0 * jnp.pi**2)) * ((2.0 - eps) * (3.0 - 5.0 * eps) - 2.0 * eps_n)
+    return out
