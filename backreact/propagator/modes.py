@@ -75,6 +75,8 @@ _X_INTERFERENCE = (30.0, 300.0)
 # Tsit5's cheaper dense output beats Dopri8 there (measured in benchmarks/).
 STAGE2_SOLVER = diffrax.Tsit5()
 
+_TIME_BATCH = 64  # output times per batch of the k integration
+
 
 class ModeSettings(eqx.Module):
     """Numerical settings of the exact method (all static)."""
@@ -453,8 +455,20 @@ def _sums(t, n, ctx, lnk, q, qp, in_window, after_stop, pre_exit, kind):
     r = jnp.where(live, jnp.where(pre_exit, r_vac, r_other), 0.0)
     f_int = jnp.where(live & ~pre_exit, p * w_int * g_int * y / xs, 0.0)
     tau = jnp.exp(era.lah) * era.eta
-    omega = filon_weights(lnx, tau, ctx["dlnk"], ctx["lmat"])
-    total = jnp.sum(ctx["weights"] * r) + jnp.real(jnp.sum(omega * f_int))
+    # The interference is non-zero only for _X_SPLIT[0] < x < _X_INTERFERENCE[1]: Filon
+    # quadrature on that window of nodes (fixed size, placed from the output time n, so it
+    # does not move under the t-derivatives), not on the whole grid.
+    size = ctx["filon_window"]
+    if size < lnk.shape[0]:
+        lah_n = n + lnh0
+        i0 = jnp.searchsorted(lnk, jax.lax.stop_gradient(lah_n) + math.log(_X_SPLIT[0])) - 2
+        i0 = jnp.clip(i0, 0, lnk.shape[0] - size)
+        lnx_w = jax.lax.dynamic_slice(lnx, (i0,), (size,))
+        f_w = jax.lax.dynamic_slice(f_int, (i0,), (size,))
+    else:
+        lnx_w, f_w = lnx, f_int
+    omega = filon_weights(lnx_w, tau, ctx["dlnk"], ctx["lmat"])
+    total = jnp.sum(ctx["weights"] * r) + jnp.real(jnp.sum(omega * f_w))
     ln_kir = ctx["ln_kir"]
     ln_mu = ctx["ln_mu"]
     ir_a = jnp.exp(2.0 * (ln_kir - m)) / (8.0 * jnp.pi**2)  # k_IR^2/(8 pi^2 a^2)
@@ -668,6 +682,7 @@ def exact_propagator(
         "dlnk": dlnk,
         "lmat": _lagrange_to_monomial(dlnk),
         "weights": _simpson_weights(plan.n_k, dlnk),
+        "filon_window": int(math.ceil(math.log(_X_INTERFERENCE[1] / _X_SPLIT[0]) / dlnk)) + 6,
         "ln_kir": spline.efolds[0] + spline.ln_hubble_nodes[0],
         "ln_mu": ln_mu,
     }
@@ -680,8 +695,12 @@ def exact_propagator(
         kin = _sums(0.0, n, ctx, sol.lnk, q, qp, inw, aft, pre, "K") if kinetic else jnp.zeros(())
         return f(0.0), d1(0.0), jax.jacfwd(d1)(0.0), kin
 
-    a, da, d2a, kin = jax.vmap(at_time, in_axes=(0, 1, 1, 1, 1, 1))(
-        out_n, sol.q, sol.qp, sol.in_window, sol.after_stop, sol.pre_exit
+    # Output times in batches (lax.map): the per-time work is (modes x jet) wide, and all
+    # times at once would hold every intermediate for every time (4 GB on 1120 x 1361).
+    a, da, d2a, kin = jax.lax.map(
+        lambda args: at_time(*args),
+        (out_n, sol.q.T, sol.qp.T, sol.in_window.T, sol.after_stop.T, sol.pre_exit.T),
+        batch_size=_TIME_BATCH,
     )
     lnh, eps = spline.ln_hubble_and_epsilon(out_n)
     box = -jnp.exp(2.0 * lnh) * (d2a + (3.0 - eps) * da)
