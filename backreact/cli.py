@@ -145,7 +145,24 @@ _DIAGNOSTIC_ROWS: tuple[tuple[str, str, str], ...] = (
     ("slow_roll_n_s", "slow-roll n_s", ""),
     ("slow_roll_r", "slow-roll r", ""),
     ("propagator_method", "propagator method", ""),
-    ("propagator_seconds", "propagator time (incl. compilation)", "s"),
+    ("closure", "closure", ""),
+    ("calibrated_parameter", "calibrated parameter", ""),
+    ("calibrated_value", "calibrated value", ""),
+    ("calibration_sensitivity", "d ln(target) / d ln(parameter)", ""),
+    ("passes", "fixed-point passes", ""),
+    ("final_residual", "final residual max |delta ln H|", ""),
+    ("second_friedmann_residual", "second Friedmann equation residual", ""),
+    ("lcdm_max_deviation", "max |H/H_LCDM - 1|, 0 < z < 3", ""),
+    ("lcdm_deviation_redshift", "  at redshift", ""),
+    ("dlnA_dlnmu", "d ln A0 / d ln mu (renormalization scale)", ""),
+    ("dlnH0_dlnmu", "d ln H0 / d ln mu", ""),
+    ("dlnA_dNstart", "d ln A0 / d N_start (start of the history)", ""),
+    ("dlnH0_dNstart", "d ln H0 / d N_start", ""),
+    ("prior_variance_Mp2", "prior variance A_prior", "M_p^2"),
+    ("prior_de_sitter_efolds", "  as de Sitter e-folds at H_start", ""),
+    ("validity_max", "largest closure validity ratio", ""),
+    ("validity_verdict", "validity verdict", ""),
+    ("propagator_seconds", "propagator and solve time (incl. compilation)", "s"),
 )
 
 _R_KEYS = {"tensor_to_scalar_ratio", "slow_roll_r"}
@@ -195,6 +212,14 @@ def summary_table(
     if "reheating_temperature_GeV" in today:
         _add_row(table, "reheating temperature", _fmt(today["reheating_temperature_GeV"]), "GeV", "")
     return table
+
+
+def _print_verdict(out: Console, diagnostics: Mapping[str, Any]) -> None:
+    """The validity verdict and its explanation, as a paragraph under the summary table."""
+    text = diagnostics.get("validity_explanation")
+    if text:
+        verdict = str(diagnostics.get("validity_verdict", ""))
+        out.print(f"verdict: {verdict}: {text}", markup=False, soft_wrap=False)
 
 
 def _metadata_table(record: Any, path: Path) -> Table:
@@ -304,6 +329,7 @@ def run(
     out = _stdout()
     if not quiet:
         out.print(summary_table(result.today, result.diagnostics, title=f"scenario {cfg.scenario.name}"))
+        _print_verdict(out, result.diagnostics)
     out.print(f"wrote {path}", markup=False, soft_wrap=True)
 
 
@@ -339,6 +365,7 @@ def show(
         raise _fail(EXIT_INPUT, exc) from None
     out = _stdout()
     out.print(summary_table(record.today, record.diagnostics, title=_scenario_title(record.config_toml)))
+    _print_verdict(out, record.diagnostics)
     out.print()
     out.print(_metadata_table(record, run_file))
 

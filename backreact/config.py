@@ -222,7 +222,7 @@ class _Required:
 REQUIRED: Any = _Required()
 
 FLOAT, INT, STR, CHOICE = "float", "int", "str", "choice"
-_PHYSICAL_UNITS = {"GeV", "K", "M_p^2"}
+_PHYSICAL_UNITS = {"GeV", "K", "M_p^2", "eV", "GeV^4", "M_p", "1/M_p", "km/s/Mpc"}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -388,6 +388,27 @@ def _check_h5(value: str, values: Mapping[str, Any]):
     return None
 
 
+_CALLABLE_PATH = re.compile(r"[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)*:[A-Za-z_][A-Za-z0-9_]*")
+
+
+def _check_callable_path(value: str, values: Mapping[str, Any]):
+    if not _CALLABLE_PATH.fullmatch(value):
+        return "is not of the form 'module.path:function'", None
+    return None
+
+
+def _check_closure_method(value: str, values: Mapping[str, Any]):
+    if value != "none" and values.get("propagator.method") == "none":
+        return "needs the propagator, but propagator.method is 'none'", "'none', or set propagator.method"
+    return None
+
+
+def _check_calibration_target(value: str, values: Mapping[str, Any]):
+    if value != "none" and values.get("spectator.closure") == "none":
+        return "needs a closure to calibrate (spectator.closure is 'none')", None
+    return None
+
+
 SECTIONS: tuple[Section, ...] = (
     Section("scenario", "Name and description of the run."),
     Section("inflation", "The inflationary stage: model, scale and duration.", required=True),
@@ -396,6 +417,9 @@ SECTIONS: tuple[Section, ...] = (
     Section("cosmology", "Late-universe contents (today's physical densities)."),
     Section("grid", "Output sampling of the history and integrator tolerances."),
     Section("propagator", "The spectator's coincident propagator A = <sigma^2> along the history."),
+    Section("spectator", "The closure: the spectator's energy density built from its propagator."),
+    Section("calibration", "Solve for the closure's parameter so that a target today is met."),
+    Section("solver", "The self-consistent fixed point over the expansion history."),
     Section("output", "Where the results are written."),
 )
 
@@ -498,6 +522,65 @@ SCHEMA: tuple[Field, ...] = (
        range=Interval("[]", 28.0, 1000.0), only=("method", ("exact",))),
     _F("propagator", "rtol", FLOAT, 1e-10, "exact method: relative tolerance of the mode integrations",
        range=Interval("[]", 1e-13, 1e-6), only=("method", ("exact",))),
+    # --- [spectator]
+    _F("spectator", "closure", CHOICE, "none",
+       "none: no back-reaction; gaussian: frozen Gaussian field, rho = <U(sigma)> with variance A; "
+       "derivative: rho = -kappa Box A; user: a JAX function named by module path",
+       choices=("none", "gaussian", "derivative", "user"), check=_check_closure_method),
+    _F("spectator", "potential", CHOICE, "quadratic",
+       "potential U(sigma) of the Gaussian spectator: quadratic m^2 sigma^2/2, quartic lambda sigma^4/4, "
+       "cosine Lambda^4 (1 - cos(sigma/f)), exponential V0 exp(beta sigma), custom: amplitude u(sigma)",
+       choices=("quadratic", "quartic", "cosine", "exponential", "custom"),
+       only=("closure", ("gaussian",))),
+    _F("spectator", "mass_eV", FLOAT, REQUIRED, "spectator mass m (H0 is about 1.4e-33 eV)", unit="eV",
+       range=Interval("()", 0.0, 1e30), only=("potential", ("quadratic",))),
+    _F("spectator", "coupling", FLOAT, REQUIRED, "quartic self-coupling lambda",
+       range=Interval("()", 0.0, 1e3), only=("potential", ("quartic",))),
+    _F("spectator", "scale_GeV", FLOAT, REQUIRED, "scale Lambda of the cosine potential", unit="GeV",
+       range=Interval("()", 0.0, 1e19), only=("potential", ("cosine",))),
+    _F("spectator", "decay_constant_Mp", FLOAT, REQUIRED, "decay constant f of the cosine potential",
+       unit="M_p", range=Interval("()", 0.0, 1e6), only=("potential", ("cosine",))),
+    _F("spectator", "amplitude_GeV4", FLOAT, REQUIRED, "amplitude V0 of the exponential or custom potential",
+       unit="GeV^4", range=Interval("()", 0.0, 1e76), only=("potential", ("exponential", "custom"))),
+    _F("spectator", "slope_Mp", FLOAT, REQUIRED, "slope beta of the exponential potential (in 1/M_p)",
+       unit="1/M_p", range=Interval("[]", -1e3, 1e3), only=("potential", ("exponential",))),
+    _F("spectator", "potential_function", STR, REQUIRED,
+       "custom potential u(sigma) (sigma in M_p, dimensionless result) as 'module.path:function'; "
+       "it must be JAX-traceable; U = amplitude_GeV4 u(sigma)",
+       only=("potential", ("custom",)), check=_check_callable_path, allowed_doc="'module.path:function'"),
+    _F("spectator", "quadrature_nodes", INT, 40, "Gauss-Hermite nodes for the custom potential's averages",
+       range=Interval("[]", 4, 400), only=("potential", ("custom",))),
+    _F("spectator", "kappa", FLOAT, REQUIRED, "coupling kappa of rho = -kappa Box A (dimensionless)",
+       range=Interval("[]", -1e300, 1e300), only=("closure", ("derivative",))),
+    _F("spectator", "closure_function", STR, REQUIRED,
+       "user closure f(A, dA, d2A, H, eps, parameter) -> rho or (rho, p), all in M_p units, as "
+       "'module.path:function'; it must be JAX-traceable",
+       only=("closure", ("user",)), check=_check_callable_path, allowed_doc="'module.path:function'"),
+    _F("spectator", "parameter", FLOAT, 0.0, "the parameter passed to the user closure",
+       range=Interval("[]", -1e300, 1e300), only=("closure", ("user",))),
+    _F("spectator", "validity_threshold", FLOAT, 0.1,
+       "the run is flagged invalid where the closure's validity ratio exceeds this",
+       range=Interval("(]", 0.0, 1e3)),
+    # --- [calibration]
+    _F("calibration", "target", CHOICE, "none",
+       "none: use the closure's parameter as given; H0: solve it so that H0 has a value; "
+       "fraction_spectator: so that Omega_q today has a value",
+       choices=("none", "H0", "fraction_spectator"), check=_check_calibration_target),
+    _F("calibration", "H0_km_s_Mpc", FLOAT, REQUIRED, "target Hubble rate today", unit="km/s/Mpc",
+       range=Interval("()", 1.0, 1000.0), only=("target", ("H0",))),
+    _F("calibration", "fraction_spectator", FLOAT, REQUIRED, "target density fraction of the spectator today",
+       range=Interval("()", 0.0, 1.0), only=("target", ("fraction_spectator",))),
+    # --- [solver]
+    _F("solver", "tolerance", FLOAT, 1e-10, "stop when max |delta ln H| between passes is below this",
+       range=Interval("[]", 1e-14, 1e-3)),
+    _F("solver", "max_passes", INT, 30, "give up after this many passes", range=Interval("[]", 1, 1000)),
+    _F("solver", "acceleration", CHOICE, "anderson",
+       "anderson: Anderson acceleration of the fixed point; picard: plain (damped) iteration",
+       choices=("anderson", "picard")),
+    _F("solver", "memory", INT, 3, "Anderson: number of previous passes mixed",
+       range=Interval("[]", 1, 10), only=("acceleration", ("anderson",))),
+    _F("solver", "damping", FLOAT, 1.0, "Picard: fraction of the new source taken each pass",
+       range=Interval("(]", 0.0, 1.0), only=("acceleration", ("picard",))),
     # --- [output]
     _F("output", "directory", STR, "runs", "directory of the output file"),
     _F("output", "file", STR, "", "output file name; empty: <scenario.name>.h5 (inside directory)",

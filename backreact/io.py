@@ -116,6 +116,7 @@ TODAY_ATTRIBUTES: dict[str, tuple[str, str]] = {
     "fraction_spectator": ("1", "density fraction of the spectator field today"),
     "w0": ("1", "dark-energy equation of state today, w(a) = w0 + wa (1 - a)"),
     "wa": ("1", "dark-energy equation of state slope, w(a) = w0 + wa (1 - a)"),
+    "cpl_residual": ("1", "rms residual of the CPL fit of w_spectator over 0 <= z <= 2"),
     "efolds_inflation": ("1", "number of e-folds of inflation in the history"),
     "efolds_end_of_inflation_to_today": ("1", "e-folds from the end of inflation to today"),
     "propagator_GeV2": ("GeV^2", "coincident propagator of the spectator field today"),

@@ -197,3 +197,153 @@ def propagator_warnings(history, cfg, prop: dict) -> list[str]:
                 "A is only approximate there"
             )
     return out
+
+
+# ------------------------------------------------------------------ spectator and CPL
+
+
+def spectator_datasets(out) -> dict[str, np.ndarray]:
+    """``pressure_spectator`` (GeV^4), ``w_spectator`` and ``closure_validity`` from a
+    closure's output (M_p units); w is NaN where rho_q = 0."""
+    mp4 = C.REDUCED_PLANCK_MASS_GEV**4
+    rho = _np(out.density)
+    p = _np(out.pressure)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(rho != 0.0, p / np.where(rho != 0.0, rho, 1.0), np.nan)
+    return {"pressure_spectator": p * mp4, "w_spectator": w, "closure_validity": _np(out.validity)}
+
+
+def cpl_fit(scale_factor, w, a_min: float = 1.0 / 3.0, points: int = 201) -> tuple[float, float, float]:
+    """Least-squares fit of w(a) = w0 + wa (1 - a) (Chevallier & Polarski 2001; Linder 2003)
+    on ``points`` values uniform in a over [a_min, 1] (0 <= z <= 2 by default).
+
+    ``scale_factor``, ``w``: the history (a increasing or not); w is interpolated linearly
+    in a, so a w that is linear in a is recovered exactly. Returns (w0, wa, rms residual).
+    """
+    a = _np(scale_factor)
+    w = _np(w)
+    order = np.argsort(a)
+    a, w = a[order], w[order]
+    if a[0] > a_min or a[-1] < 1.0:
+        raise ValueError(f"cpl_fit: the history must cover a in [{a_min:g}, 1], got [{a[0]:g}, {a[-1]:g}]")
+    grid = np.linspace(a_min, 1.0, points)
+    wg = np.interp(grid, a, w)
+    design = np.stack([np.ones_like(grid), 1.0 - grid], axis=1)
+    coef, *_ = np.linalg.lstsq(design, wg, rcond=None)
+    resid = wg - design @ coef
+    return float(coef[0]), float(coef[1]), float(np.sqrt(np.mean(resid**2)))
+
+
+def spectator_summary(history, datasets: dict[str, np.ndarray]) -> dict[str, float]:
+    """w0, wa of the spectator's w_q over 0 <= z <= 2 and the fit's rms residual."""
+    w = datasets["w_spectator"]
+    a = datasets["scale_factor"]
+    late = a >= 0.25
+    if not np.all(np.isfinite(w[late])):
+        return {"w0": math.nan, "wa": math.nan, "cpl_residual": math.nan}
+    w0, wa, res = cpl_fit(a[late], w[late])
+    return {"w0": w0, "wa": wa, "cpl_residual": res}
+
+
+def deceleration(epsilon):
+    """q = -a a_tt / a_t^2 = eps - 1."""
+    return _np(epsilon) - 1.0
+
+
+def matching_lcdm(cfg, h0_km_s_mpc: float):
+    """The flat LambdaCDM with the run's H0, omega_b, omega_c and radiation (DESIGN 2.8)."""
+    from .reference import FlatLCDM
+
+    c = cfg.cosmology
+    return FlatLCDM(h0_km_s_mpc, c.omega_b, c.omega_c, c.cmb_temperature_K, c.n_eff)
+
+
+def lcdm_deviation(cfg, datasets: dict[str, np.ndarray], z_max: float = 3.0) -> dict[str, float]:
+    """max over 0 < z < z_max of |H/H_LCDM - 1| against the matching LambdaCDM, and where."""
+    z = datasets["redshift"]
+    i0 = int(np.argmin(np.abs(z)))
+    h0 = float(datasets["hubble_km_s_Mpc"][i0])
+    try:
+        ref = matching_lcdm(cfg, h0)
+    except ValueError:  # matter and radiation alone exceed the critical density: no LCDM match
+        return {"lcdm_max_deviation": math.nan, "lcdm_deviation_redshift": math.nan}
+    sel = (z > 0.0) & (z < z_max)
+    dev = np.abs(datasets["hubble_km_s_Mpc"][sel] / ref.hubble_km_s_Mpc(z[sel]) - 1.0)
+    j = int(np.argmax(dev))
+    return {
+        "lcdm_max_deviation": float(dev[j]),
+        "lcdm_deviation_redshift": float(z[sel][j]),
+        "lcdm_omega_lambda": float(ref.Omega_lambda),
+    }
+
+
+def _ranges_above(z, values, threshold) -> str:
+    return _z_ranges(z, np.isfinite(values) & (values > threshold))
+
+
+def validity_verdict(history, cfg, datasets, prop, diagnostics) -> tuple[dict[str, object], list[str]]:
+    """The closure's validity verdict: the largest validity ratio along the history (and
+    where), against spectator.validity_threshold; for an invalid frozen Gaussian spectator
+    the numbers that explain why (how much memory a frozen field with this energy needs).
+
+    Returns (diagnostics entries, warnings). Only the closure's own invalidity fails the
+    verdict; a propagator method used outside its range is a warning (``propagator_warnings``).
+    """
+    mp = C.REDUCED_PLANCK_MASS_GEV
+    thr = float(cfg.spectator.validity_threshold)
+    ratio = datasets["closure_validity"]
+    z = datasets["redshift"]
+    n = datasets["efolds"]
+    i0 = today_index(history)
+    out: dict[str, object] = {"validity_threshold": thr}
+    h_start = float(np.exp(_np(history.ln_hubble)[0]))
+    from .propagator import prior_variance
+
+    a_prior = prior_variance(cfg, math.log(h_start))
+    if cfg.prehistory.kind != "none":
+        out["prior_variance_Mp2"] = a_prior
+        out["prior_de_sitter_efolds"] = 4.0 * math.pi**2 * a_prior / h_start**2
+    finite = np.isfinite(ratio)
+    if not finite.any():
+        out["validity_verdict"] = "no criterion"
+        out["validity_explanation"] = (
+            f"the {cfg.spectator.closure} closure has no validity ratio of its own; judge it by the physics"
+        )
+        return out, []
+    j = int(np.nanargmax(np.where(finite, ratio, -np.inf)))
+    rmax = float(ratio[j])
+    out["validity_max"] = rmax
+    out["validity_max_redshift"] = float(z[j])
+    if rmax <= thr:
+        out["validity_verdict"] = "valid"
+        out["validity_explanation"] = (
+            f"|<U''>|/H^2 stays below {rmax:.3g} (threshold {thr:g}) along the whole history, "
+            f"largest at z = {z[j]:.3g}"
+        )
+        return out, []
+    out["validity_verdict"] = "invalid"
+    where = _ranges_above(z, ratio, thr)
+    text = (
+        f"the closure is invalid: |<U''>|/H^2 exceeds {thr:g} at {where} (largest {rmax:.3g} at "
+        f"z = {z[j]:.3g}); a frozen Gaussian spectator is rolling there, so its rho_q and w_q are wrong"
+    )
+    if cfg.spectator.closure == "gaussian":
+        rho_q0 = float(_np(history.rho_spectator)[i0])
+        h2_min = float(np.min(np.exp(2.0 * _np(history.ln_hubble))[n >= 0.0 - 1e-12]))
+        a_now = float(prop["A"][i0]) if "A" in prop else math.nan
+        if rho_q0 > 0.0 and np.isfinite(a_now):
+            need = 2.0 * rho_q0 / (thr * h2_min)
+            ds_efolds = 4.0 * math.pi**2 * need / h_start**2
+            a_explicit = a_now - a_prior
+            text += (
+                f". Why: a frozen quadratic field with rho_q0 = {rho_q0 * mp**4:.3g} GeV^4 "
+                f"(Omega_q0 = {float(datasets['fraction_spectator'][i0]):.3g}) and m^2 <= {thr:g} H^2 "
+                f"needs a variance A >= 2 rho_q0/({thr:g} H_min^2) = {need:.3g} M_p^2, but the history "
+                f"gives A = {a_now:.3g} M_p^2 ({a_explicit:.3g} M_p^2 from its "
+                f"{cfg.inflation.efolds:g} explicit e-folds, about H_inf^2 N/(4 pi^2)), "
+                f"{need / max(a_now, 1e-300):.3g} times too little; that variance would need about "
+                f"{ds_efolds:.3g} de Sitter e-folds at H = {h_start * mp:.3g} GeV before the history "
+                "(prehistory.kind = 'de_sitter_efolds' or 'variance')"
+            )
+    out["validity_explanation"] = text
+    return out, [text]

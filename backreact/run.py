@@ -30,6 +30,7 @@ class RunResult:
     warnings: list[str] = field(default_factory=list)
     converged: bool = True
     iterations: int = 0
+    residuals: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     def record(self) -> RunRecord:
         return RunRecord(
@@ -38,7 +39,7 @@ class RunResult:
             today=self.today,
             converged=self.converged,
             iterations=self.iterations,
-            residuals=np.zeros(0),
+            residuals=self.residuals,
             warnings=list(self.warnings),
             diagnostics=self.diagnostics,
         )
@@ -55,11 +56,77 @@ def _check_finite(history) -> None:
             raise FloatingPointError(f"background: {name} is not finite at N = {n[i]:.4f} (grid point {i})")
 
 
-def run_scenario(cfg: Config) -> RunResult:
-    """Solve the expansion history of a validated config and collect its observables."""
+def propagator_function(cfg: Config, history, *, third: bool = False):
+    """A jit-traceable map History -> propagator dict (M_p units at the history's nodes),
+    with the static sizes (k grid, save slots) fixed from ``history``; None for
+    propagator.method = 'none'. Passes of the fixed point reuse it (same shapes)."""
+    import math as _m
+
+    from .propagator import ModeSettings, exact_propagator, mode_plan, prior_variance, spline_from_history
+
+    pc = cfg.propagator
+    if pc.method == "none":
+        return None
+    spline0 = spline_from_history(history)
+    ln_h0 = float(np.asarray(history.ln_hubble)[0])
+    a_prior = prior_variance(cfg, ln_h0)
+    ln_mu_offset = _m.log(pc.mu_over_start_hubble)
+    if pc.method == "exact":
+        settings = ModeSettings(
+            modes_per_efold=float(pc.modes_per_efold),
+            start_x=float(pc.start_x),
+            handover_x=float(pc.handover_x),
+            stop_x=float(pc.stop_x),
+            rtol=float(pc.rtol),
+            atol=float(pc.rtol) * 1e-2,
+        )
+        plan = mode_plan(spline0, spline0.efolds, settings)
+        extra = {"third": True} if third else {}
+
+        def propagate(h):
+            sp = spline_from_history(h)
+            return exact_propagator(
+                sp,
+                sp.efolds,
+                plan,
+                ln_mu=sp.ln_hubble_nodes[0] + ln_mu_offset,
+                prior_variance=a_prior,
+                settings=settings,
+                **extra,
+            )
+
+        return propagate
+    from .propagator.memory import memory_kernel_propagator, required_k_nodes
+
+    n_k = required_k_nodes(spline0, float(np.asarray(history.end_of_inflation)), float(pc.modes_per_efold))
+    extra = {"third": True} if third else {}
+
+    def propagate(h):
+        sp = spline_from_history(h)
+        return memory_kernel_propagator(
+            sp,
+            sp.efolds,
+            end_of_inflation=h.end_of_inflation,
+            ln_mu=sp.ln_hubble_nodes[0] + ln_mu_offset,
+            prior_variance=a_prior,
+            modes_per_efold=float(pc.modes_per_efold),
+            n_k=n_k,
+            **extra,
+        )
+
+    return propagate
+
+
+def run_scenario(cfg: Config, progress=None) -> RunResult:
+    """Solve a validated config end to end: the plain history, then (with a closure) the
+    self-consistent fixed point, and the observables of the result.
+
+    ``progress``: optional host callback progress(pass, residual) of the fixed point.
+    """
     import equinox as eqx
 
     from .background import expansion_history, model_from_config
+    from .closures import closure_from_config
     from .observables import (
         history_datasets,
         propagator_datasets,
@@ -68,26 +135,64 @@ def run_scenario(cfg: Config) -> RunResult:
         today_index,
         today_summary,
     )
-    from .propagator import propagator_along
 
     t0 = time.perf_counter()
     model = model_from_config(cfg)
-    history = eqx.filter_jit(expansion_history)(model)
-    history = _to_numpy(history)
-    elapsed = time.perf_counter() - t0
+    closure = closure_from_config(cfg)
+    plain = eqx.filter_jit(expansion_history)(model)
+    _check_finite(_to_numpy(plain))
+    diagnostics: dict[str, object] = {}
+    residuals = np.zeros(0)
+    converged = True
+    iterations = 0
+    extra_warnings: list[str] = []
+    t1 = time.perf_counter()
+    propagate = propagator_function(cfg, plain, third=closure is not None and closure.needs_third)
+    if closure is None:
+        history = _to_numpy(plain)
+        prop = eqx.filter_jit(propagate)(plain) if propagate is not None else {}
+        prop = {k: np.asarray(v) for k, v in prop.items()}
+        out = None
+    else:
+        from .solve import status_message
+
+        fp = _solve_fixed_point(cfg, model, closure, propagate, plain, progress)
+        history = _to_numpy(fp.history)
+        prop = {k: np.asarray(v) for k, v in fp.propagator.items()}
+        out = jax_tree_numpy(fp.output)
+        iterations = int(fp.passes)
+        residuals = np.asarray(fp.residuals)[:iterations]
+        status = int(fp.status)
+        converged = status == 0
+        diagnostics.update(_solver_diagnostics(cfg, fp, closure))
+        closure = fp.closure
+        if not converged:
+            extra_warnings.append(f"the fixed point did not converge: {status_message(status)}")
+            diagnostics["solver_status"] = status_message(status)
+    prop_seconds = time.perf_counter() - t1
     _check_finite(history)
     datasets = history_datasets(history)
     today = today_summary(history, cfg, datasets)
-    t1 = time.perf_counter()
-    prop = propagator_along(history, cfg)
-    prop_seconds = time.perf_counter() - t1
-    prop_warnings = []
+    prop_warnings: list[str] = []
     if prop:
         _check_finite_arrays(history, prop, "propagator")
         datasets.update(propagator_datasets(prop))
         today["propagator_GeV2"] = float(datasets["propagator"][today_index(history)])
         prop_warnings = propagator_warnings(history, cfg, prop)
-    diagnostics: dict[str, object] = {"solve_seconds": elapsed}
+        diagnostics.update(_unphysical_sensitivities(history, prop, closure))
+    if out is not None:
+        from .observables import spectator_datasets, spectator_summary, validity_verdict
+
+        _check_finite_arrays(history, {"density": out.density, "pressure": out.pressure}, "closure")
+        datasets.update(spectator_datasets(out))
+        today.update(spectator_summary(history, datasets))
+        verdict, verdict_warnings = validity_verdict(history, cfg, datasets, prop, diagnostics)
+        diagnostics.update(verdict)
+        extra_warnings += verdict_warnings
+    from .observables import lcdm_deviation
+
+    diagnostics.update(lcdm_deviation(cfg, datasets))
+    diagnostics["solve_seconds"] = time.perf_counter() - t0
     if prop:
         diagnostics["propagator_seconds"] = prop_seconds
         diagnostics["propagator_method"] = cfg.propagator.method
@@ -97,8 +202,129 @@ def run_scenario(cfg: Config) -> RunResult:
         diagnostics["slow_roll_r"] = float(r_sr)
     if math.isfinite(today.get("hubble_at_pivot_exit_GeV", math.nan)):
         diagnostics["pivot_exit_efolds_before_end"] = float(history.end_of_inflation - history.pivot_exit)
-    warnings = list(cfg.warnings) + run_warnings(history, cfg, today) + prop_warnings
-    return RunResult(cfg, history, datasets, today, diagnostics, warnings)
+    warnings = list(cfg.warnings) + run_warnings(history, cfg, today) + prop_warnings + extra_warnings
+    return RunResult(
+        cfg,
+        history,
+        datasets,
+        today,
+        diagnostics,
+        warnings,
+        converged=converged,
+        iterations=iterations,
+        residuals=residuals,
+    )
+
+
+def jax_tree_numpy(tree):
+    import jax
+
+    return jax.tree_util.tree_map(lambda x: np.asarray(x), tree)
+
+
+def _solve_fixed_point(cfg, model, closure, propagate, plain, progress):
+    import equinox as eqx
+
+    from . import constants as C
+    from ._jax import jnp
+    from .solve import SolverSettings, Target, solve_fixed_point
+
+    sc = cfg.solver
+    settings = SolverSettings(
+        tolerance=float(sc.tolerance),
+        max_passes=int(sc.max_passes),
+        acceleration=sc.acceleration,
+        memory=int(sc.memory) if sc.memory is not None else 3,
+        damping=float(sc.damping) if sc.damping is not None else 1.0,
+    )
+    cal = cfg.calibration
+    target = None
+    if cal.target == "H0":
+        h0 = cal.H0_km_s_Mpc / 100.0 * C.H100_GEV / C.REDUCED_PLANCK_MASS_GEV
+        target = Target(jnp.asarray(h0), "H0")
+    elif cal.target == "fraction_spectator":
+        target = Target(jnp.asarray(cal.fraction_spectator), "fraction_spectator")
+
+    def solve(m, cl, start):
+        return solve_fixed_point(m, cl, propagate, settings, target, start=start, progress=progress)
+
+    return eqx.filter_jit(solve)(model, closure, plain)
+
+
+def _unphysical_sensitivities(history, prop, closure) -> dict[str, float]:
+    """Sensitivity of A today and of H0 to the two unphysical choices (DESIGN 2.7), to first
+    order: the renormalization scale mu enters A only through the counterterm
+    -(2 - eps) H^2 ln(H/mu)/(8 pi^2) (DESIGN 2.3.1), so dA/d ln mu = (2 - eps) H^2/(8 pi^2)
+    exactly; moving the first point of the history earlier by dN adds the modes that exit
+    in that e-fold, frozen at (1 - eps) H^2 C(eps)/(4 pi^2) per e-fold (DESIGN 2.3.3, C the
+    freeze factor), so dA/dN_start = -(1 - eps_s) H_s^2 C(eps_s)/(4 pi^2) at every later time.
+    H0 responds through the closure: d ln H0 = d rho_q0/(2 rho_total0), the closure's rho
+    differentiated in forward mode along the change of (A, A', A''); the history's own
+    response to the changed rho_q is of the order of the fixed point's contraction factor.
+    """
+    import jax
+
+    from ._jax import jnp
+    from .closures import ClosureInput
+    from .observables import today_index
+    from .propagator import spline_from_history
+    from .propagator.special import freeze_factor
+
+    i0 = today_index(history)
+    sp = spline_from_history(history)
+    a0 = float(prop["A"][i0])
+
+    def shift_mu(n):
+        lnh, eps = sp.ln_hubble_and_epsilon(n)
+        return (2.0 - eps) * jnp.exp(2.0 * lnh) / (8.0 * jnp.pi**2)
+
+    n0 = jnp.asarray(float(history.efolds[i0]))
+    d1 = jax.jacfwd(shift_mu)
+    mu_jet = (shift_mu(n0), d1(n0), jax.jacfwd(d1)(n0))
+    eps_s = float(history.epsilon[0])
+    h2_s = float(np.exp(2.0 * history.ln_hubble[0]))
+    d_start = -(1.0 - eps_s) * h2_s * float(freeze_factor(eps_s)) / (4.0 * math.pi**2)
+    out = {"dlnA_dlnmu": float(mu_jet[0]) / a0, "dlnA_dNstart": d_start / a0}
+    if closure is None:
+        return out
+    x0 = ClosureInput(
+        *(jnp.asarray(prop[k][i0 : i0 + 1]) for k in ("A", "dA", "d2A")),
+        None,
+        jnp.asarray(history.ln_hubble[i0 : i0 + 1]),
+        jnp.asarray(history.epsilon[i0 : i0 + 1]),
+        jnp.zeros(1),
+    )
+    rho_total0 = float(np.asarray(history.rho_total)[i0]) if hasattr(history, "rho_total") else math.nan
+
+    def rho_change(tangent):
+        def f(a, da, d2a):
+            return closure.density(a, da, d2a, x0.ln_hubble, x0.epsilon)[0]
+
+        return float(jax.jvp(f, (x0.A, x0.dA, x0.d2A), tuple(jnp.full(1, t) for t in tangent))[1])
+
+    out["dlnH0_dlnmu"] = rho_change(tuple(float(v) for v in mu_jet)) / (2.0 * rho_total0)
+    out["dlnH0_dNstart"] = rho_change((d_start, 0.0, 0.0)) / (2.0 * rho_total0)
+    return out
+
+
+def _solver_diagnostics(cfg, fp, closure) -> dict[str, object]:
+    from .closures import parameter_to_config_units
+
+    out: dict[str, object] = {
+        "passes": int(fp.passes),
+        "final_residual": float(np.asarray(fp.residuals)[int(fp.passes) - 1]) if int(fp.passes) else math.nan,
+        "second_friedmann_residual": float(fp.friedmann2),
+        "contraction_factor": float(fp.contraction),
+        "closure": cfg.spectator.closure
+        + (f" ({cfg.spectator.potential})" if cfg.spectator.closure == "gaussian" else ""),
+    }
+    if cfg.calibration.target != "none":
+        key, value = parameter_to_config_units(cfg, float(fp.closure.parameter()))
+        out["calibrated_parameter"] = key
+        out["calibrated_value"] = value
+        out["calibration_target"] = cfg.calibration.target
+        out["calibration_sensitivity"] = float(fp.sensitivity)
+    return out
 
 
 def _check_finite_arrays(history, arrays: dict, stage: str) -> None:

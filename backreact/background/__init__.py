@@ -1,6 +1,13 @@
 """The expansion history: inflation, reheating, radiation, matter, Lambda, spectator."""
 
-from .friedmann import ExpansionModel, History, ThermalArrays, expansion_history, model_from_config
+from .friedmann import (
+    ExpansionModel,
+    History,
+    ThermalArrays,
+    expansion_history,
+    model_from_config,
+    today_node,
+)
 from .inflation import EpsilonProfile, InflatonPotential, PlateauPotential, QuadraticPotential
 from .thermal import ThermalTable, thermal_table
 
@@ -16,4 +23,5 @@ __all__ = [
     "expansion_history",
     "model_from_config",
     "thermal_table",
+    "today_node",
 ]

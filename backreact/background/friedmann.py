@@ -531,6 +531,12 @@ def _cumulative_quad(f, nodes):
     return jnp.concatenate([jnp.zeros(1), jnp.cumsum(per)])
 
 
+def today_node(model: ExpansionModel) -> int:
+    """Index of the grid node placed exactly at N = 0 (today); static for a grid shape."""
+    ni, nr, nm, nl = model.points
+    return ni + nr + nm + max(2, int(round(_PAST_FRACTION * nl))) - 1
+
+
 def expansion_history(model: ExpansionModel, rho_q=None, p_q=None) -> History:
     """Solve the background for a given spectator rho_q(N), p_q(N) on the grid.
 
