@@ -107,7 +107,8 @@ _N_K = 382  # enough for de Sitter on [0, 19] (required_k_nodes), shared by all 
 
 @pytest.fixture(scope="module")
 def lanes():
-    """All histories in one jit-compiled, vmapped call (also the jit/vmap check); lanes:
+    """All histories in one jit-compiled, vmapped call (also the jit/vmap check), with the third
+    derivative (third=True: A, A', A'' are those of the default call, bitwise); lanes:
     0 synthetic, 1 synthetic with ln H and ln mu shifted by ln 1e-56, 2 de Sitter (H = mu = 1),
     3 power law eps = 0.1 (ln mu = 0), 4 the same with ln mu = 1, 5 inflation then eps = 3.5."""
     splines = [
@@ -125,7 +126,7 @@ def lanes():
 
     @jax.jit
     def run(stacked, ln_mu, ends):
-        return jax.vmap(lambda s, m, e: _run(s, times, _N_K, e, m))(stacked, ln_mu, ends)
+        return jax.vmap(lambda s, m, e: _run(s, times, _N_K, e, m, third=True))(stacked, ln_mu, ends)
 
     out = jax.tree_util.tree_map(np.asarray, run(stacked, ln_mu, ends))
     return [{k: v[i] for k, v in out.items()} for i in range(6)]
@@ -151,6 +152,8 @@ def test_de_sitter_growth_law(lanes):
     assert abs(float(out["A"][_I_REF + 5]) - 0.1266509046) < 1e-10  # N = 5
     assert np.max(np.abs(out["dA"] - (1 + e2) / FOUR_PI2)) < 1e-14
     assert np.max(np.abs(out["d2A"] + 2 * e2 / FOUR_PI2)) < 1e-14
+    # A''' = 4 e^{-2N}/(4 pi^2) = e^{-2N}/pi^2 (the third derivative of the same closed form)
+    assert np.max(np.abs(out["d3A"] - 4 * e2 / FOUR_PI2)) < 1e-14
     # Box A = -(3 + e^{-2N})/(4 pi^2) in de Sitter (section 3 item 5a)
     assert np.max(np.abs(out["box"] + (3 + e2) / FOUR_PI2)) < 1e-14
     assert bool(np.all(out["valid"]))
@@ -175,6 +178,16 @@ def test_power_law_memory_closed_form(lanes):
     dloc = h2 / FOUR_PI2 * (-2 * eps * (cl + 0.5 * (2 - eps) * eps * n) + 0.5 * (2 - eps) * eps)
     dloc = dloc + np.exp(-2 * n) / FOUR_PI2
     assert np.max(np.abs(out["dA"] - ((1 - eps) * cf * h2 / FOUR_PI2 + dloc))) < 1e-15
+    # A''' of the same closed forms: A_mem''' = 4 eps^2 (1 - eps) C H^2/(4 pi^2); with
+    # g = c(eps) + ((2 - eps)/2) eps N, (H^2 g)''' = H^2 (-8 eps^3 g + 12 eps^2 (2 - eps) eps/2), and
+    # the IR term gives e^{-2N}/pi^2. Measured 2.7e-14 (|A'''| <= 0.1): the spline's third
+    # derivative of ln H is 6 c3/h^3 (node spacing h = 0.1), so the rounding of ln H ~ 1e-16 becomes
+    # a spurious eps_NN ~ 1e-13; tolerance 1e-13.
+    g = cl + 0.5 * (2 - eps) * eps * n
+    d3loc = h2 / FOUR_PI2 * (-8 * eps**3 * g + 12 * eps**2 * 0.5 * (2 - eps) * eps)
+    d3loc = d3loc + np.exp(-2 * n) / math.pi**2
+    d3 = 4 * eps**2 * (1 - eps) * cf * h2 / FOUR_PI2 + d3loc
+    assert np.max(np.abs(out["d3A"] - d3)) < 1e-13
 
 
 def test_renormalization_scale_dependence(lanes):
@@ -272,21 +285,30 @@ def test_validity_flag(lanes):
 
 
 def test_derivatives_match_finite_differences_in_constant_eras(lanes):
-    # A', A'' are analytic (moving limit during inflation; chain rule at fixed p after it).
-    # Where eps is constant (radiation, matter) and during inflation they are the derivatives
-    # of A itself: compare with central differences (step 1e-4) off the spline nodes.
+    # A', A'', A''' are analytic (moving limit during inflation; chain rule at fixed p after
+    # it). Where eps is constant (radiation, matter) and during inflation they are the
+    # derivatives of A itself: compare with central differences (step 1e-4) off the spline
+    # nodes. (In the junctions, where eps changes, the fixed-p derivatives are not those of A:
+    # the kernel's index p follows eps(N) and its derivative is not carried.)
     spline, out = _synthetic_spline(), lanes[0]
     m = _MID.size
-    a, da, d2a = out["A"], out["dA"], out["d2A"]
+    a, da, d2a, d3a = out["A"], out["dA"], out["d2A"], out["d3A"]
     fd1 = (a[2 * m : 3 * m] - a[m : 2 * m]) / (2 * _DELTA)
     fd2 = (da[2 * m : 3 * m] - da[m : 2 * m]) / (2 * _DELTA)
+    fd3 = (d2a[2 * m : 3 * m] - d2a[m : 2 * m]) / (2 * _DELTA)
     # inflation: 1e-5, because eps_N of the spline jumps at its nodes, so W(ln k) has small
     # steps that the k-quadrature resolves only to first order (measured 2.5e-6, else 1e-9);
     # radiation and matter: measured 3e-7 (the step-size error of the differences).
-    for lo, hi, tol in ((0.5, 7.8, 1e-5), (8.6, 12.9, 1e-6), (13.6, 16.9, 1e-6)):
+    # A''' against differences of A'' (relative to the largest |A'''|): measured 1.5e-7
+    # in inflation, 1.6e-8 in matter and 2.7e-5 in radiation, where the step error
+    # (1e-4)^2/6 |A^(5)| is largest: the kernel's standing waves near z = 30-36 turn at
+    # d(2z)/dN = 2z (eps - 1) ~ 70 per e-fold, so |A^(5)| ~ 5e3 |A'''| there; tolerance 1e-6,
+    # 1e-4, 1e-6.
+    for lo, hi, tol, tol3 in ((0.5, 7.8, 1e-5, 1e-6), (8.6, 12.9, 1e-6, 1e-4), (13.6, 16.9, 1e-6, 1e-6)):
         era = (_MID > lo) & (_MID < hi)
         assert np.max(np.abs(fd1 - da[:m])[era]) < tol * np.max(np.abs(da[:m][era]))
         assert np.max(np.abs(fd2 - d2a[:m])[era]) < tol * np.max(np.abs(d2a[:m][era]))
+        assert np.max(np.abs(fd3 - d3a[:m])[era]) < tol3 * np.max(np.abs(d3a[:m][era]))
     lnh, eps = (np.asarray(v) for v in spline.ln_hubble_and_epsilon(jnp.asarray(_TIMES)))
     box = -np.exp(2 * lnh) * (d2a + (3 - eps) * da)
     assert np.max(np.abs(out["box"] - box)) < 1e-13 * np.max(np.abs(box))
@@ -296,7 +318,7 @@ def test_extreme_hubble_scales(lanes):
     # H from 1e-5 down to 1e-61 M_p (ln H shifted by ln 1e-56, mu with it): A scales as H^2
     # exactly (k_IR, x and z are unchanged), with no under- or overflow (logs throughout).
     out, low = lanes[0], lanes[1]
-    for key, power in (("A", 2), ("dA", 2), ("d2A", 2), ("box", 4)):
+    for key, power in (("A", 2), ("dA", 2), ("d2A", 2), ("d3A", 2), ("box", 4)):
         ref = out[key] * math.exp(power * _SHIFT)
         # 1e-9: after the shift ln H ~ -140, so ln(aH) and the exit times N1(k) carry absolute
         # rounding errors ~3e-14, amplified where 1 - eps is small (measured 3e-10)

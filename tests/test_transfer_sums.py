@@ -102,7 +102,7 @@ def test_chebyshev_bound_for_any_weights():
 
 
 def test_sums_are_differentiable_in_ln_z_and_p():
-    # S_1 and S_2 are the ln z derivatives of S_0 and S_1 (all nodes of a row move together in
+    # S_1, S_2, S_3 are the ln z derivatives of S_0, S_1, S_2 (all nodes of a row move together in
     # ln z): forward-mode derivatives through every range and its boundaries must agree with
     # them to rounding (1e-12 of sum |alpha| x max |K^(n+1)|; measured 1.6e-15, 2e-14). The
     # gradient in p (the history enters through eps) matches central differences (step 1e-5;
@@ -115,13 +115,14 @@ def test_sums_are_differentiable_in_ln_z_and_p():
     scale = _kernel_scale(p)
 
     def sums_at(lam0, p):
-        return TS.row_sums(p, lam0, pre, H, POINTS)
+        return TS.row_sums(p, lam0, pre, H, POINTS, orders=4)
 
     def with_tangent(lam0, p):
         return jax.jvp(lambda x: sums_at(x, p), (lam0,), (jnp.ones_like(lam0),))
 
     vals, tangents = jax.jit(with_tangent)(lam0, p)
-    for n in range(2):
+    # (orders=4: S_3 too, for the memory kernel's third derivative; measured 2.5e-14 for it)
+    for n in range(3):
         err = np.abs(np.asarray(tangents[n]) - np.asarray(vals[n + 1])) / (total * scale[n + 1])
         assert np.max(err) < 1e-12, (n, np.max(err))
 
@@ -134,3 +135,29 @@ def test_sums_are_differentiable_in_ln_z_and_p():
         e = jnp.zeros(p.size).at[i].set(1e-5)
         fd = (float(f(p + e, lam0)) - float(f(p - e, lam0))) / 2e-5
         assert abs(grad[i] - fd) < 1e-7 * (i + 1) * total, i
+
+
+def test_fourth_ln_z_derivative_of_the_kernel():
+    # kernel_jet_rows(order=4) gives K^(4) = d^4 K/dlnz^4 (the memory sums need it at the end
+    # nodes for S_3) from the Bessel equation; it must be the ln z derivative of the reference's
+    # K^(3) (forward mode through ``special.transfer_kernel_lnz``) in every branch: series,
+    # Hankel expansion, the C^3 blend over z = 30..36 and the phase average. Relative to
+    # max |K^(4)| per p; 1e-10 covers the 0F1 series' rounding near z = 12 + p, which the
+    # derivative amplifies (measured 2.1e-11).
+    p = jnp.asarray(_P)
+    lam = jnp.linspace(math.log(1e-2), math.log(80.0), 401) + 1e-3  # off the branch boundaries
+    lam = jnp.broadcast_to(lam, (p.size, lam.size))
+    co = S.kernel_coefficients(p)
+    jet = jax.jit(lambda co, p, lam: S.kernel_jet_rows(co, p, lam, order=4))(co, p, lam)
+
+    def k3(lam):
+        return S.transfer_kernel_lnz(p[:, None], jnp.exp(lam))[3]
+
+    _, d4 = jax.jit(lambda lam: jax.jvp(k3, (lam,), (jnp.ones_like(lam),)))(lam)
+    ref = np.asarray(d4)
+    scale = np.max(np.abs(ref), axis=1, keepdims=True)
+    err = np.abs(np.asarray(jet[4]) - ref) / scale
+    assert np.max(err) < 1e-10, np.max(err)
+    # and the lower orders are the reference's (as for order 3)
+    ref3 = np.asarray(k3(lam))
+    assert np.max(np.abs(np.asarray(jet[3]) - ref3) / np.max(np.abs(ref3), axis=1, keepdims=True)) < 1e-10

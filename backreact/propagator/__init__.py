@@ -3,9 +3,9 @@
 Two methods (DESIGN 2.3): the exact vectorized mode sum (``modes.py``, default) and the
 fast memory kernel (``memory.py``, valid during inflation and decelerating eras only).
 Both take the history as a spline of ln H (``_history.py``) and return, in M_p units,
-"A", "dA" (dA/dN), "d2A" and "box" (Box A = -H^2 (A'' + (3 - eps) A')); the memory kernel
-also "valid". The prior variance of modes that left before the first point (2.3.5) is
-added to A.
+"A", "dA" (dA/dN), "d2A" and "box" (Box A = -H^2 (A'' + (3 - eps) A')), with ``third=True``
+also "d3A" (d^3A/dN^3); the memory kernel also "valid". The prior variance of modes that left
+before the first point (2.3.5) is added to A.
 """
 
 from __future__ import annotations
@@ -43,11 +43,13 @@ def prior_variance(cfg, ln_hubble_start: float) -> float:
     return 0.0
 
 
-def propagator_along(history, cfg) -> dict[str, np.ndarray]:
+def propagator_along(history, cfg, *, third: bool = False) -> dict[str, np.ndarray]:
     """A, A', A'', Box A (M_p units, numpy) at every grid node of a solved history.
 
     ``cfg`` is a validated Config; its [propagator] section picks the method. Returns an
-    empty dict for method = "none".
+    empty dict for method = "none". ``third``: also "d3A" = d^3A/dN^3 (M_p^2), analytic in
+    both methods (at a grid node the one-sided value of the interval to the right, where
+    eps_N of the spline jumps).
     """
     import equinox as eqx
 
@@ -71,7 +73,7 @@ def propagator_along(history, cfg) -> dict[str, np.ndarray]:
         plan = mode_plan(spline, out, settings)
         run = eqx.filter_jit(
             lambda sp, n, mu, ap: exact_propagator(
-                sp, n, plan, ln_mu=mu, prior_variance=ap, settings=settings
+                sp, n, plan, ln_mu=mu, prior_variance=ap, settings=settings, third=third
             )
         )
         res = run(spline, out, ln_mu, a_prior)
@@ -89,6 +91,7 @@ def propagator_along(history, cfg) -> dict[str, np.ndarray]:
                 prior_variance=ap,
                 modes_per_efold=float(pc.modes_per_efold),
                 n_k=n_k,
+                third=third,
             )
         )
         res = run(spline, out, ln_mu, a_prior)

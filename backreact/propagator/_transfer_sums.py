@@ -3,7 +3,7 @@
 After inflation the memory sum at one output time is a weighted sum over the nodes
 s_j = s_0 + j h (h = 1/modes_per_efold) of K = ``special.transfer_kernel_lnz`` at one p:
 
-    S_n = sum_j alpha_j K^(n)(p, lambda_j),   lambda_j = ln z_j = lambda_0 + j h,   n = 0, 1, 2,
+    S_n = sum_j alpha_j K^(n)(p, lambda_j),   lambda_j = ln z_j = lambda_0 + j h,   n = 0, 1, 2 (3),
 
 K^(n) = d^n K/d(ln z)^n. The nodes of one output time are uniform in ln z, so the row splits
 into three index ranges, each summed without evaluating K at every node:
@@ -136,12 +136,13 @@ def _clenshaw(coef, x):
     return c[..., 0, :] + x * b1 - b2
 
 
-def row_sums(p, lam0, pre: dict, h: float, points=None):
+def row_sums(p, lam0, pre: dict, h: float, points=None, orders: int = 3):
     """(S_0, S_1, S_2) for output times with index p (shape (T,)) and ln z_0 = ``lam0`` (T,).
 
     ``pre`` = ``precompute(alpha, h)``. ``points`` (optional): extra nodes, a tuple of arrays
     (d_i, a_i, b_i) of one shape (P,), adding sum_i a_i K^(n)(lambda_0 + d_i)
-    + b_i K^(n+1)(lambda_0 + d_i) (evaluated directly, with the window).
+    + b_i K^(n+1)(lambda_0 + d_i) (evaluated directly, with the window). ``orders`` = 4 also
+    returns S_3 (for the third N-derivative of A; the points then need K^(4)).
     """
     n_k = pre["prefix"].shape[1] - 1
     window = window_nodes(h)
@@ -155,7 +156,7 @@ def row_sums(p, lam0, pre: dict, h: float, points=None):
     lam_last = jnp.minimum(lam0 + (j_a - 1) * h, _LN_Z_SERIES)
     series = _taylor_of_square(co["gamma"]) * jnp.exp(2.0 * k * lam_last[:, None])
     series = series * pre["prefix"][:, j_a].T
-    sums = [jnp.sum(series * (2.0 * k) ** n, axis=-1) for n in range(3)]
+    sums = [jnp.sum(series * (2.0 * k) ** n, axis=-1) for n in range(orders)]
 
     # (ii) the window node by node (nodes past the last one have alpha = 0), with the points
     idx = j_a[:, None] + np.arange(window)
@@ -163,9 +164,9 @@ def row_sums(p, lam0, pre: dict, h: float, points=None):
     n_pts = 0 if points is None else points[0].shape[0]
     if n_pts:
         lam = jnp.concatenate([lam, lam0[:, None] + points[0]], axis=1)
-    jet = kernel_jet_rows(co, p, lam, order=3 if n_pts else 2)
+    jet = kernel_jet_rows(co, p, lam, order=orders if n_pts else orders - 1)
     a_win = pre["alpha"][idx]
-    for n in range(3):
+    for n in range(orders):
         sums[n] = sums[n] + jnp.sum(a_win * jet[n][:, :window], axis=-1)
         if n_pts:
             sums[n] = sums[n] + jet[n][:, window:] @ points[1] + jet[n + 1][:, window:] @ points[2]
@@ -179,4 +180,4 @@ def row_sums(p, lam0, pre: dict, h: float, points=None):
     x = (2.0 * jnp.exp(-q * h) - (r_lo + r_hi)) / (r_hi - r_lo)
     g = _clenshaw(pre["tail"][:, j_w].T, x)
     f = co["average"] * jnp.exp(co["ln_e0"][:, None] - q * lam_w[:, None]) * g
-    return tuple(sums[n] + jnp.sum(f * (-q) ** n, axis=-1) for n in range(3))
+    return tuple(sums[n] + jnp.sum(f * (-q) ** n, axis=-1) for n in range(orders))

@@ -131,6 +131,23 @@ def _weight(spline: HistorySpline, n1):
     return w, w_n, -jet[1]
 
 
+def _weight_second(spline: HistorySpline, n1):
+    """d^2 W/dN1^2 at n1 (the local Taylor polynomial of ln H is exact to the order needed:
+    W depends on eps_N, whose own second derivative vanishes on the cubic)."""
+    jet = _lnh_jet(spline, n1)
+
+    def w_of(tau):
+        lnh, eps, eps_n = _along(jet, tau)
+        slow_roll = jnp.maximum(1.0 - KAPPA2 * eps_n, 0.0)
+        return jnp.exp(2.0 * lnh) * freeze_factor(eps) * slow_roll / _FOUR_PI2
+
+    def slope(tau):
+        return jax.jvp(w_of, (tau,), (jnp.ones_like(tau),))[1]
+
+    zero = jnp.zeros_like(n1)
+    return jax.jvp(slope, (zero,), (jnp.ones_like(n1),))[1]
+
+
 def _per_lnk(w_n, eps):
     """dW/ds = (dW/dN1)/(1 - eps(N1)); 0 where 1 - eps vanishes (there W -> 0 faster)."""
     ok = 1.0 - eps > 1e-12
@@ -213,8 +230,8 @@ def required_k_nodes(spline: HistorySpline, end_of_inflation: float, modes_per_e
     return int(np.floor(float(u_max - ln_k_ir) / h)) + 2
 
 
-def _local_part(spline: HistorySpline, n, ln_mu, ln_k_ir):
-    """A_loc and its first two N-derivatives (elementwise in n)."""
+def _local_part(spline: HistorySpline, n, ln_mu, ln_k_ir, third: bool = False):
+    """A_loc and its first two (``third``: three) N-derivatives (elementwise in n)."""
     jet = _lnh_jet(spline, n)
 
     def a_loc(tau):
@@ -228,11 +245,18 @@ def _local_part(spline: HistorySpline, n, ln_mu, ln_k_ir):
         return jax.jvp(a_loc, (tau,), (jnp.ones_like(tau),))
 
     zero = jnp.zeros_like(n)
-    (a, a1), (_, a2) = jax.jvp(a_and_slope, (zero,), (jnp.ones_like(n),))
-    return a, a1, a2
+    if not third:
+        (a, a1), (_, a2) = jax.jvp(a_and_slope, (zero,), (jnp.ones_like(n),))
+        return a, a1, a2
+
+    def jet2(tau):
+        return jax.jvp(a_and_slope, (tau,), (jnp.ones_like(tau),))
+
+    ((a, a1), (_, a2)), (_, (_, a3)) = jax.jvp(jet2, (zero,), (jnp.ones_like(n),))
+    return a, a1, a2, a3
 
 
-@functools.partial(jax.jit, static_argnames=("modes_per_efold", "n_k", "time_chunk"))
+@functools.partial(jax.jit, static_argnames=("modes_per_efold", "n_k", "time_chunk", "third"))
 def memory_kernel_propagator(
     spline: HistorySpline,
     efolds,
@@ -243,6 +267,7 @@ def memory_kernel_propagator(
     modes_per_efold: float = 20.0,
     n_k: int,
     time_chunk: int | None = None,
+    third: bool = False,
 ) -> dict:
     """A(N) = <sigma^2> by the memory kernel, with analytic A', A'' and Box A (M_p = 1).
 
@@ -253,11 +278,13 @@ def memory_kernel_propagator(
     number of ln k nodes, at least ``required_k_nodes(...)`` (a run-time error otherwise);
     ``time_chunk`` (static, optional): evaluate the post-inflation kernel in batches of this many
     times with rematerialization in reverse mode, which bounds the memory of gradients (without
-    it the batches have 128 times and are not rematerialized).
+    it the batches have 128 times and are not rematerialized); ``third`` (static): also "d3A",
+    the third N-derivative of A, analytic like A' and A'' (the same construction one order up).
 
     Returns arrays of shape (T,): "A", "dA" (dA/dN), "d2A", "box" (Box A = -H^2 (A'' + (3 - eps) A')),
     "valid" (False after inflation wherever eps <= VALID_EPS_MIN = 1.4 or eps > 3), and the parts
-    "memory" (the s-integral) and "local" (A_loc).
+    "memory" (the s-integral) and "local" (A_loc). With ``third``, also "d3A" (d^3A/dN^3, the
+    same construction one order up; docs/physics.md 3.3a).
 
     Cost (benchmarks/bench_propagator.py, LambdaCDM history, 1120 times x 1287 k nodes): ~10-20
     ms warm, linear in the number of times; see docs/propagator_memory_kernel.md section 4.
@@ -274,7 +301,7 @@ def memory_kernel_propagator(
     n1 = _exit_times(spline, jnp.where(active, s, ln_k_ir), n_start, n_e)
 
     # ---- the history at the output times
-    lnh, eps, eps_n, _ = _epsilon_jet(spline, n)
+    lnh, eps, eps_n, eps_nn = _epsilon_jet(spline, n)
     ln_ah = n + lnh
     inflating = n <= n_e
     n_end_node = jnp.where(inflating, jnp.maximum(n, n_start), n_e)
@@ -293,6 +320,10 @@ def memory_kernel_propagator(
     started = n >= n_start
     dmem_inf = jnp.where(started, (1.0 - eps) * w_u, 0.0)
     d2mem_inf = jnp.where(started, -eps_n * w_u + (1.0 - eps) * w_u_n, 0.0)
+    if third:
+        # d/dN of -eps_N W + (1 - eps) W_N1 along N1 = N (the end node moves with N)
+        w_u_nn = _weight_second(spline, n_end_node)
+        d3mem_inf = jnp.where(started, -eps_nn * w_u - 2.0 * eps_n * w_u_n + (1.0 - eps) * w_u_nn, 0.0)
 
     # ---- after inflation: fixed weights on [ln k_IR, U_max], T(p, z) of the current era.
     # The derivative weights omega' are non-zero only at j = 0, j = m_top and the end node, so
@@ -311,8 +342,10 @@ def memory_kernel_propagator(
 
     points = (point_offset, point_alpha, point_beta)
 
+    orders = 4 if third else 3
+
     def rows(p_rows, lam0_rows):
-        return row_sums(p_rows, lam0_rows, pre, h, points)
+        return row_sums(p_rows, lam0_rows, pre, h, points, orders=orders)
 
     # Rows in blocks of _ROW_BLOCK times (or time_chunk, then rematerialized in the backward
     # pass): the per-row work stays in cache, which keeps the cost linear in the number of times
@@ -321,7 +354,7 @@ def memory_kernel_propagator(
     n_t = p.shape[0]
     block = _ROW_BLOCK if time_chunk is None else time_chunk
     if time_chunk is None and n_t <= block:
-        s0, s1, s2 = rows(p, lam0)
+        sums = rows(p, lam0)
     else:
         n_blocks = -(-n_t // block)
         pad = n_blocks * block - n_t
@@ -332,17 +365,23 @@ def memory_kernel_propagator(
         per_block = (
             (lambda args: rows(*args)) if time_chunk is None else jax.checkpoint(lambda args: rows(*args))
         )
-        s0, s1, s2 = (v.reshape(-1)[:n_t] for v in jax.lax.map(per_block, (blocked(p), blocked(lam0))))
+        sums = tuple(v.reshape(-1)[:n_t] for v in jax.lax.map(per_block, (blocked(p), blocked(lam0))))
+    s0, s1, s2 = sums[:3]
     r = eps - 1.0
     mem = jnp.where(inflating, mem_inf, s0)
     dmem = jnp.where(inflating, dmem_inf, r * s1)
     d2mem = jnp.where(inflating, d2mem_inf, r * r * s2 + eps_n * s1)
 
     # ---- local part and assembly
-    loc, dloc, d2loc = _local_part(spline, n, ln_mu, ln_k_ir)
+    loc, dloc, d2loc, *d3loc = _local_part(spline, n, ln_mu, ln_k_ir, third)
     a = prior_variance + mem + loc
     da = dmem + dloc
     d2a = d2mem + d2loc
     box = -jnp.exp(2.0 * lnh) * (d2a + (3.0 - eps) * da)
     valid = inflating | ((eps > VALID_EPS_MIN) & (eps <= 1.0 + 1.0 / P_MIN))
-    return {"A": a, "dA": da, "d2A": d2a, "box": box, "valid": valid, "memory": mem, "local": loc}
+    out = {"A": a, "dA": da, "d2A": d2a, "box": box, "valid": valid, "memory": mem, "local": loc}
+    if third:
+        # d/dN of r^2 S_2 + eps_N S_1 at fixed p (dr/dN = eps_N, dS_n/dN = r S_(n+1))
+        d3mem = jnp.where(inflating, d3mem_inf, r**3 * sums[3] + 3.0 * r * eps_n * s2 + eps_nn * s1)
+        out["d3A"] = d3mem + d3loc[0]
+    return out

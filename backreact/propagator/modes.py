@@ -33,7 +33,9 @@ docs/physics.md). Recipe (DESIGN 2.3.4):
    WKB phase.
 6. A', A'' by exact Taylor-mode differentiation at each output time: per mode, u and u'
    are continued as a polynomial in N using the mode equation (u'' and u''' exactly), the
-   history from the spline; no finite differences.
+   history from the spline; no finite differences. ``third=True`` continues them one order
+   further (the fourth derivative of u from the mode equation, eps_NN from the spline) and
+   adds A''' (docs/physics.md 3.3a).
 7. The kinetic sum K = <g^{mu nu} d sigma d sigma> renormalized on its own (same scheme,
    its own adiabatic terms K2, K4, K6), for the Box identity Box A = 2 (K_ren + L).
 
@@ -232,16 +234,32 @@ def _wkb_initial(spline, lnk, n):
 # ------------------------------------------------------------ the per-time functional
 
 
-def _mode_taylor(u, up, x, eps, deps, t):
+def _mode_taylor(u, up, x, eps, deps, t, ddeps=None):
     """u(N+t) and u'(N+t) as polynomials in t from the mode equation, exact to second order
     in t: all that A' and A'' at t = 0 need (|u|^2, |u'|^2 and |u + u'|^2 take their second
-    t-derivative from u, u', u'' and the third derivative of u)."""
+    t-derivative from u, u', u'' and the third derivative of u).
+
+    Given ``ddeps`` = eps_NN they are exact to third order, for A''' (the third t-derivative
+    of |u'|^2 needs the fourth derivative of u: the mode equation differentiated twice)."""
     x2 = x * x
     upp = -(3.0 - eps) * up - x2 * u
     # (x^2)' = -2 (1 - eps) x^2
     uppp = deps * up - (3.0 - eps) * upp + 2.0 * (1.0 - eps) * x2 * u - x2 * up
-    ut = u + up * t + upp * t**2 / 2
-    upt = up + upp * t + uppp * t**2 / 2
+    if ddeps is None:
+        ut = u + up * t + upp * t**2 / 2
+        upt = up + upp * t + uppp * t**2 / 2
+        return ut, upt
+    # d/dN of u''' = eps_N u' - (3 - eps) u'' + 2 (1 - eps) x^2 u - x^2 u'
+    u4 = (
+        ddeps * up
+        + 2.0 * deps * upp
+        - (3.0 - eps) * uppp
+        - (2.0 * deps + 4.0 * (1.0 - eps) ** 2) * x2 * u
+        + 4.0 * (1.0 - eps) * x2 * up
+        - x2 * upp
+    )
+    ut = u + up * t + upp * t**2 / 2 + uppp * t**3 / 6
+    upt = up + upp * t + uppp * t**2 / 2 + u4 * t**3 / 6
     return ut, upt
 
 
@@ -402,17 +420,23 @@ def _integrand(kind, era, xs, wt, d2, gamma, envelope):
     return xw * (d2 - b * b) * (envelope - 1.0), vac_part, g
 
 
-def _sums(t, n, ctx, lnk, q, qp, in_window, after_stop, pre_exit, kind):
+def _sums(t, n, ctx, lnk, q, qp, in_window, after_stop, pre_exit, kind, third=False):
     """Renormalized A (kind "A") or K (kind "K") at time n + t (t = 0 is the output time).
 
     q, qp: scaled mode data at n (q = u sqrt(2k) a_a, scale2 = ln(k^2/(2 a_a^2)) per mode).
+    ``third``: carry the mode data to n + t exact to third order in t (what A''' needs).
     """
     spline, clocks = ctx["spline"], ctx["clocks"]
     m = n + t
     lnh0, eps0 = spline.ln_hubble_and_epsilon(n)
     deps0 = jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1])(n)
     x0 = jnp.exp(lnk - n - lnh0)
-    qt, qpt = _mode_taylor(q, qp, x0, eps0, deps0, t)
+    ddeps0 = None
+    if third:
+        # eps of the cubic Hermite ln H is piecewise quadratic, so eps_NN is piecewise constant
+        # (one-sided at a node: the interval to the right, like eps_N)
+        ddeps0 = jax.grad(jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1]))(n)
+    qt, qpt = _mode_taylor(q, qp, x0, eps0, deps0, t, ddeps0)
     era = _era(spline, clocks, m)
     h2 = jnp.exp(2.0 * era.lnh)
     c = 2.0 - era.eps
@@ -664,8 +688,14 @@ def exact_propagator(
     settings: ModeSettings = ModeSettings(),
     oracle: bool = False,
     kinetic: bool = True,
+    third: bool = False,
 ):
     """A, A', A'' and Box A (M_p units) at the output times by the exact method.
+
+    With ``third`` also "d3A" = A''' (M_p^2, same shape as "A"), from the mode equation: each
+    mode is continued to third order in the time shift (its fourth derivative from the mode
+    equation differentiated twice, eps_NN of the spline by forward-mode differentiation),
+    never by finite differences. ``third=False`` leaves the default computation unchanged.
 
     With ``kinetic`` (default) also "kinetic" = K_ren = <g^{mu nu} d_mu sigma d_nu sigma>
     renormalized on its own (DESIGN 2.3.6), "local_box" = L, and so the Box identity
@@ -695,16 +725,37 @@ def exact_propagator(
         kin = _sums(0.0, n, ctx, sol.lnk, q, qp, inw, aft, pre, "K") if kinetic else jnp.zeros(())
         return f(0.0), d1(0.0), jax.jacfwd(d1)(0.0), kin
 
+    def at_time_third(n, q, qp, inw, aft, pre):
+        # A and its first three t-derivatives from one nested forward-mode jet of the
+        # third-order mode continuation (A, A', A'' come out of the same evaluation).
+        def f(t):
+            return _sums(t, n, ctx, sol.lnk, q, qp, inw, aft, pre, "A", third=True)
+
+        def jet1(t):
+            return jax.jvp(f, (t,), (jnp.ones_like(t),))
+
+        def jet2(t):
+            return jax.jvp(jet1, (t,), (jnp.ones_like(t),))
+
+        ((v, d1), (_, d2)), (_, (_, d3)) = jax.jvp(jet2, (jnp.zeros(()),), (jnp.ones(()),))
+        kin = _sums(0.0, n, ctx, sol.lnk, q, qp, inw, aft, pre, "K") if kinetic else jnp.zeros(())
+        return v, d1, d2, d3, kin
+
     # Output times in batches (lax.map): the per-time work is (modes x jet) wide, and all
     # times at once would hold every intermediate for every time (4 GB on 1120 x 1361).
-    a, da, d2a, kin = jax.lax.map(
-        lambda args: at_time(*args),
-        (out_n, sol.q.T, sol.qp.T, sol.in_window.T, sol.after_stop.T, sol.pre_exit.T),
-        batch_size=_TIME_BATCH,
-    )
+    per_time = (out_n, sol.q.T, sol.qp.T, sol.in_window.T, sol.after_stop.T, sol.pre_exit.T)
+    if third:
+        # the third-order jet is twice as wide as the second-order one: half the batch
+        a, da, d2a, d3a, kin = jax.lax.map(
+            lambda args: at_time_third(*args), per_time, batch_size=_TIME_BATCH // 2
+        )
+    else:
+        a, da, d2a, kin = jax.lax.map(lambda args: at_time(*args), per_time, batch_size=_TIME_BATCH)
     lnh, eps = spline.ln_hubble_and_epsilon(out_n)
     box = -jnp.exp(2.0 * lnh) * (d2a + (3.0 - eps) * da)
     out = {"A": a + prior_variance, "dA": da, "d2A": d2a, "box": box}
+    if third:
+        out["d3A"] = d3a
     if kinetic:
         eps_n = jax.vmap(jax.grad(lambda z: spline.ln_hubble_and_epsilon(z)[1]))(out_n)
         h4 = jnp.exp(4.0 * lnh)

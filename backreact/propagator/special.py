@@ -472,7 +472,7 @@ def _horner_rows(coefs, x):
 
 
 def kernel_jet_rows(co, p, lam, order: int = 2):
-    """(K, dK/dlnz, ...) up to ``order`` (<= 3) of ``transfer_kernel_lnz`` at ln z = ``lam``.
+    """(K, dK/dlnz, ...) up to ``order`` (<= 4) of ``transfer_kernel_lnz`` at ln z = ``lam``.
 
     ``p`` has shape B, ``lam`` shape B + (L,) (L values of ln z per p), ``co`` =
     ``kernel_coefficients(p)``. Same branches as the reference: power series for z <= 12 + p,
@@ -515,6 +515,14 @@ def kernel_jet_rows(co, p, lam, order: int = 2):
     if order >= 3:
         g3 = 2.0 * pe * g1 - 2.0 * pe * g2 - z2 * g1
         ex.append(zt1 + 3.0 * z2t2 + 2.0 * (3.0 * g1 * g2 + g * g3))
+    if order >= 4:
+        # ln z derivatives D^n g of g (D = z d/dz) from the Bessel equation, which reads
+        # D^2 g = (1 - 2p) D g - z^2 g; differentiating it, D^3 g = (1 - 2p) D^2 g - z^2 (2 g + D g)
+        # and D^4 g = (1 - 2p) D^3 g - z^2 (4 g + 4 D g + D^2 g). Then D^4 (g^2) by Leibniz.
+        dg2 = (1.0 - 2.0 * pe) * g1 - z2 * g
+        dg3 = (1.0 - 2.0 * pe) * dg2 - z2 * (2.0 * g + g1)
+        dg4 = (1.0 - 2.0 * pe) * dg3 - z2 * (4.0 * g + 4.0 * g1 + dg2)
+        ex.append(2.0 * (g * dg4 + 4.0 * g1 * dg3 + 3.0 * dg2 * dg2))
 
     lam_a = jnp.maximum(lam, _LN_ZA)
     y2a = jnp.exp(-2.0 * lam_a)
@@ -525,6 +533,8 @@ def kernel_jet_rows(co, p, lam, order: int = 2):
     av = [e * s[0], e * (a * s[0] + s[1]), e * (a * a * s[0] + 2.0 * a * s[1] + s[2])]
     if order >= 3:
         av.append(e * (a**3 * s[0] + 3.0 * a * a * s[1] + 3.0 * a * s[2] + s[3]))
+    if order >= 4:
+        av.append(e * (a**4 * s[0] + 4.0 * a**3 * s[1] + 6.0 * a * a * s[2] + 4.0 * a * s[3] + s[4]))
 
     delta = _LN_ZB - _LN_ZA
     u = jnp.clip((lam - _LN_ZA) / delta, 0.0, 1.0)
@@ -535,8 +545,15 @@ def kernel_jet_rows(co, p, lam, order: int = 2):
         420.0 * (u * v) ** 2 * (1.0 - 2.0 * u) / delta**2,
         840.0 * u * v * (5.0 * u * u - 5.0 * u + 1.0) / delta**3,
     )
+    if order >= 4:
+        # the blend is a degree-7 polynomial in u: its fourth derivative is not zero at the ends
+        # u = 0, 1 (it is only C^3), so it acts strictly inside the blend (a one-sided jet
+        # would need a side; a node exactly at z = 30 or 36 takes the outer branch)
+        inside = (lam > _LN_ZA) & (lam < _LN_ZB)
+        s4 = 840.0 * (1.0 - 12.0 * u + 30.0 * u * u - 20.0 * u**3) / delta**4
+        sw = sw + (jnp.where(inside, s4, 0.0),)
     d = [av[n] - ex[n] for n in range(order + 1)]
-    binom = ((1,), (1, 1), (1, 2, 1), (1, 3, 3, 1))
+    binom = ((1,), (1, 1), (1, 2, 1), (1, 3, 3, 1), (1, 4, 6, 4, 1))
     out = []
     for n in range(order + 1):
         acc = ex[n]
