@@ -332,6 +332,9 @@ def test_box_identity_in_every_era_of_a_full_history():
         assert err[sel].max() < tol[name], (name, err[sel].max())
 
 
+# About 190 s of compilation for 375 dense output times: a convergence-style study, run with
+# BACKREACT_SLOW=1 (the de Sitter test keeps the third derivative in the default set).
+@pytest.mark.slow
 def test_third_derivative_is_the_derivative_of_the_second_in_every_era():
     # A''' (third=True: the third-order mode continuation, no finite differences in the code)
     # against a fourth-order central difference of the method's own A'' (step 2e-3, five
