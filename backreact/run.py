@@ -56,67 +56,6 @@ def _check_finite(history) -> None:
             raise FloatingPointError(f"background: {name} is not finite at N = {n[i]:.4f} (grid point {i})")
 
 
-def propagator_function(cfg: Config, history, *, third: bool = False):
-    """A jit-traceable map History -> propagator dict (M_p units at the history's nodes),
-    with the static sizes (k grid, save slots) fixed from ``history``; None for
-    propagator.method = 'none'. Passes of the fixed point reuse it (same shapes)."""
-    import math as _m
-
-    from .propagator import ModeSettings, exact_propagator, mode_plan, prior_variance, spline_from_history
-
-    pc = cfg.propagator
-    if pc.method == "none":
-        return None
-    spline0 = spline_from_history(history)
-    ln_h0 = float(np.asarray(history.ln_hubble)[0])
-    a_prior = prior_variance(cfg, ln_h0)
-    ln_mu_offset = _m.log(pc.mu_over_start_hubble)
-    if pc.method == "exact":
-        settings = ModeSettings(
-            modes_per_efold=float(pc.modes_per_efold),
-            start_x=float(pc.start_x),
-            handover_x=float(pc.handover_x),
-            stop_x=float(pc.stop_x),
-            rtol=float(pc.rtol),
-            atol=float(pc.rtol) * 1e-2,
-        )
-        plan = mode_plan(spline0, spline0.efolds, settings)
-        extra = {"third": True} if third else {}
-
-        def propagate(h):
-            sp = spline_from_history(h)
-            return exact_propagator(
-                sp,
-                sp.efolds,
-                plan,
-                ln_mu=sp.ln_hubble_nodes[0] + ln_mu_offset,
-                prior_variance=a_prior,
-                settings=settings,
-                **extra,
-            )
-
-        return propagate
-    from .propagator.memory import memory_kernel_propagator, required_k_nodes
-
-    n_k = required_k_nodes(spline0, float(np.asarray(history.end_of_inflation)), float(pc.modes_per_efold))
-    extra = {"third": True} if third else {}
-
-    def propagate(h):
-        sp = spline_from_history(h)
-        return memory_kernel_propagator(
-            sp,
-            sp.efolds,
-            end_of_inflation=h.end_of_inflation,
-            ln_mu=sp.ln_hubble_nodes[0] + ln_mu_offset,
-            prior_variance=a_prior,
-            modes_per_efold=float(pc.modes_per_efold),
-            n_k=n_k,
-            **extra,
-        )
-
-    return propagate
-
-
 def run_scenario(cfg: Config, progress=None) -> RunResult:
     """Solve a validated config end to end: the plain history, then (with a closure) the
     self-consistent fixed point, and the observables of the result.
@@ -135,6 +74,7 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
         today_index,
         today_summary,
     )
+    from .propagator import propagator_along, propagator_function
 
     t0 = time.perf_counter()
     model = model_from_config(cfg)
@@ -147,14 +87,14 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
     iterations = 0
     extra_warnings: list[str] = []
     t1 = time.perf_counter()
-    propagate = propagator_function(cfg, plain, third=closure is not None and closure.needs_third)
     if closure is None:
         history = _to_numpy(plain)
-        prop = eqx.filter_jit(propagate)(plain) if propagate is not None else {}
-        prop = {k: np.asarray(v) for k, v in prop.items()}
+        prop = propagator_along(plain, cfg)
         out = None
     else:
         from .solve import status_message
+
+        propagate = propagator_function(cfg, plain, third=closure.needs_third)
 
         fp = _solve_fixed_point(cfg, model, closure, propagate, plain, progress)
         history = _to_numpy(fp.history)

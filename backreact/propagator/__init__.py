@@ -25,6 +25,7 @@ __all__ = [
     "mode_plan",
     "prior_variance",
     "propagator_along",
+    "propagator_function",
     "spline_from_history",
 ]
 
@@ -43,24 +44,17 @@ def prior_variance(cfg, ln_hubble_start: float) -> float:
     return 0.0
 
 
-def propagator_along(history, cfg, *, third: bool = False) -> dict[str, np.ndarray]:
-    """A, A', A'', Box A (M_p units, numpy) at every grid node of a solved history.
-
-    ``cfg`` is a validated Config; its [propagator] section picks the method. Returns an
-    empty dict for method = "none". ``third``: also "d3A" = d^3A/dN^3 (M_p^2), analytic in
-    both methods (at a grid node the one-sided value of the interval to the right, where
-    eps_N of the spline jumps).
-    """
-    import equinox as eqx
-
+def propagator_function(cfg, history, *, third: bool = False):
+    """A jit-traceable map History -> propagator dict (M_p units at the history's nodes) for
+    the method of ``cfg`` ([propagator]), with the static sizes (k grid, save slots) fixed
+    from ``history``; None for method = "none". The passes of the fixed point reuse it."""
     pc = cfg.propagator
     if pc.method == "none":
-        return {}
-    spline = spline_from_history(history)
-    out = spline.efolds
+        return None
+    spline0 = spline_from_history(history)
     ln_h0 = float(np.asarray(history.ln_hubble)[0])
-    ln_mu = ln_h0 + math.log(pc.mu_over_start_hubble)
     a_prior = prior_variance(cfg, ln_h0)
+    ln_mu_offset = math.log(pc.mu_over_start_hubble)
     if pc.method == "exact":
         settings = ModeSettings(
             modes_per_efold=float(pc.modes_per_efold),
@@ -70,29 +64,47 @@ def propagator_along(history, cfg, *, third: bool = False) -> dict[str, np.ndarr
             rtol=float(pc.rtol),
             atol=float(pc.rtol) * 1e-2,
         )
-        plan = mode_plan(spline, out, settings)
-        run = eqx.filter_jit(
-            lambda sp, n, mu, ap: exact_propagator(
-                sp, n, plan, ln_mu=mu, prior_variance=ap, settings=settings, third=third
-            )
-        )
-        res = run(spline, out, ln_mu, a_prior)
-    else:
-        from .memory import memory_kernel_propagator, required_k_nodes
+        plan = mode_plan(spline0, spline0.efolds, settings)
 
-        n_e = float(np.asarray(history.end_of_inflation))
-        n_k = required_k_nodes(spline, n_e, float(pc.modes_per_efold))
-        run = eqx.filter_jit(
-            lambda sp, n, mu, ap: memory_kernel_propagator(
+        def propagate(h):
+            sp = spline_from_history(h)
+            return exact_propagator(
                 sp,
-                n,
-                end_of_inflation=n_e,
-                ln_mu=mu,
-                prior_variance=ap,
-                modes_per_efold=float(pc.modes_per_efold),
-                n_k=n_k,
+                sp.efolds,
+                plan,
+                ln_mu=sp.ln_hubble_nodes[0] + ln_mu_offset,
+                prior_variance=a_prior,
+                settings=settings,
                 third=third,
             )
+
+        return propagate
+    from .memory import memory_kernel_propagator, required_k_nodes
+
+    n_k = required_k_nodes(spline0, float(np.asarray(history.end_of_inflation)), float(pc.modes_per_efold))
+
+    def propagate(h):
+        sp = spline_from_history(h)
+        return memory_kernel_propagator(
+            sp,
+            sp.efolds,
+            end_of_inflation=h.end_of_inflation,
+            ln_mu=sp.ln_hubble_nodes[0] + ln_mu_offset,
+            prior_variance=a_prior,
+            modes_per_efold=float(pc.modes_per_efold),
+            n_k=n_k,
+            third=third,
         )
-        res = run(spline, out, ln_mu, a_prior)
-    return {k: np.asarray(v) for k, v in res.items()}
+
+    return propagate
+
+
+def propagator_along(history, cfg, *, third: bool = False) -> dict[str, np.ndarray]:
+    """A, A', A'', Box A (and with ``third`` the third derivative "d3A") in M_p units, numpy,
+    at every grid node of a solved history; an empty dict for propagator.method = "none"."""
+    import equinox as eqx
+
+    propagate = propagator_function(cfg, history, third=third)
+    if propagate is None:
+        return {}
+    return {k: np.asarray(v) for k, v in eqx.filter_jit(propagate)(history).items()}
