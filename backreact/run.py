@@ -80,7 +80,8 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
     model = model_from_config(cfg)
     closure = closure_from_config(cfg)
     plain = eqx.filter_jit(expansion_history)(model)
-    _check_finite(_to_numpy(plain))
+    plain_np = _to_numpy(plain)
+    _check_finite(plain_np)
     diagnostics: dict[str, object] = {}
     residuals = np.zeros(0)
     converged = True
@@ -88,7 +89,7 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
     extra_warnings: list[str] = []
     t1 = time.perf_counter()
     if closure is None:
-        history = _to_numpy(plain)
+        history = plain_np
         prop = propagator_along(plain, cfg)
         out = None
     else:
@@ -99,7 +100,7 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
         fp = _solve_fixed_point(cfg, model, closure, propagate, plain, progress)
         history = _to_numpy(fp.history)
         prop = {k: np.asarray(v) for k, v in fp.propagator.items()}
-        out = jax_tree_numpy(fp.output)
+        out = _to_numpy(fp.output)
         iterations = int(fp.passes)
         residuals = np.asarray(fp.residuals)[:iterations]
         status = int(fp.status)
@@ -154,12 +155,6 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
         iterations=iterations,
         residuals=residuals,
     )
-
-
-def jax_tree_numpy(tree):
-    import jax
-
-    return jax.tree_util.tree_map(lambda x: np.asarray(x), tree)
 
 
 def _solve_fixed_point(cfg, model, closure, propagate, plain, progress):
@@ -234,7 +229,7 @@ def _unphysical_sensitivities(history, prop, closure) -> dict[str, float]:
         jnp.asarray(history.epsilon[i0 : i0 + 1]),
         jnp.zeros(1),
     )
-    rho_total0 = float(np.asarray(history.rho_total)[i0]) if hasattr(history, "rho_total") else math.nan
+    rho_total0 = float(np.asarray(history.rho_total)[i0])
 
     def rho_change(tangent):
         def f(a, da, d2a):
