@@ -403,12 +403,12 @@ def closure_from_config(cfg) -> Closure | None:
         elif sc.potential == "exponential":
             pot = Exponential(a(sc.amplitude_GeV4 * _GEV4_MP4), a(sc.slope_Mp))
         else:
-            fn = load_callable(sc.function, "spectator.function")
+            fn = load_callable(sc.potential_function, "spectator.potential_function")
             pot = CustomPotential(a(sc.amplitude_GeV4 * _GEV4_MP4), fn, int(sc.quadrature_nodes))
         return GaussianSpectator(pot)
     if sc.closure == "derivative":
         return DerivativeClosure(a(sc.kappa))
-    fn = load_callable(sc.function, "spectator.function")
+    fn = load_callable(sc.closure_function, "spectator.closure_function")
     return UserClosure(a(sc.parameter), fn)
 
 
