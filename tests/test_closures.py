@@ -40,7 +40,9 @@ CASES = [
 ]
 
 
-@pytest.mark.parametrize("pot, amplitude, shape", CASES, ids=["quadratic", "quartic", "cosine", "exponential"])
+@pytest.mark.parametrize(
+    "pot, amplitude, shape", CASES, ids=["quadratic", "quartic", "cosine", "exponential"]
+)
 def test_closed_form_averages_match_gauss_hermite(pot, amplitude, shape):
     quad = CustomPotential(jnp.asarray(amplitude), shape, nodes=80)
     # 80 nodes integrate polynomials of degree < 160 exactly and cos/exp of these widths to
@@ -147,7 +149,11 @@ BASE = "[inflation]\n[propagator]\nmethod = 'memory_kernel'\n[spectator]\n"
     "extra, kind, parameter",
     [
         ("closure = 'gaussian'\nmass_eV = 3e-33\n", Quadratic, ("spectator.mass_eV", 3e-33)),
-        ("closure = 'gaussian'\npotential = 'quartic'\ncoupling = 0.01\n", Quartic, ("spectator.coupling", 0.01)),
+        (
+            "closure = 'gaussian'\npotential = 'quartic'\ncoupling = 0.01\n",
+            Quartic,
+            ("spectator.coupling", 0.01),
+        ),
         (
             "closure = 'gaussian'\npotential = 'cosine'\nscale_GeV = 2e-12\ndecay_constant_Mp = 0.5\n",
             Cosine,
