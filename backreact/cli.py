@@ -307,8 +307,15 @@ def run(
         if quiet:
             result = _solve(cfg)
         else:
-            with _stderr().status("solving the expansion history ..."):
-                result = _solve(cfg)
+            with _stderr().status("solving the expansion history (the first pass compiles) ...") as status:
+
+                def progress(passes: int, residual: float) -> None:
+                    status.update(
+                        f"self-consistent history: pass {int(passes)} done, "
+                        f"max |delta ln H| = {float(residual):.2e} (target {cfg.solver.tolerance:g})"
+                    )
+
+                result = _solve(cfg, progress)
     except KeyboardInterrupt:
         raise _interrupted() from None
     except (FloatingPointError, RuntimeError) as exc:
@@ -331,12 +338,16 @@ def run(
         out.print(summary_table(result.today, result.diagnostics, title=f"scenario {cfg.scenario.name}"))
         _print_verdict(out, result.diagnostics)
     out.print(f"wrote {path}", markup=False, soft_wrap=True)
+    if not result.converged:
+        # The file is kept (marked converged = no) so that the residual history can be read.
+        status = result.diagnostics.get("solver_status", "the fixed point did not converge")
+        raise _fail(EXIT_NUMERICAL, f"not converged ({path} is marked so): {status}")
 
 
-def _solve(cfg: Any) -> Any:
+def _solve(cfg: Any, progress: Any = None) -> Any:
     from backreact.run import run_scenario
 
-    return run_scenario(cfg)
+    return run_scenario(cfg, progress=progress)
 
 
 def _interrupted() -> typer.Exit:

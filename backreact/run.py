@@ -108,8 +108,9 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
         diagnostics.update(_solver_diagnostics(cfg, fp, closure))
         closure = fp.closure
         if not converged:
-            extra_warnings.append(f"the fixed point did not converge: {status_message(status)}")
-            diagnostics["solver_status"] = status_message(status)
+            why = status_message(status) + _failure_numbers(fp, status)
+            extra_warnings.append(f"the fixed point did not converge: {why}")
+            diagnostics["solver_status"] = why
     prop_seconds = time.perf_counter() - t1
     _check_finite(history)
     datasets = history_datasets(history)
@@ -130,6 +131,19 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
         verdict, verdict_warnings = validity_verdict(history, cfg, datasets, prop, diagnostics)
         diagnostics.update(verdict)
         extra_warnings += verdict_warnings
+        if not converged:
+            # The verdict of a state that is not the solution is the failure; the validity
+            # of the last finite state often says why it failed, so it follows.
+            was = diagnostics["validity_verdict"]
+            diagnostics["validity_verdict"] = "not converged"
+            text = f"the fixed point did not converge: {diagnostics['solver_status']}"
+            if was == "invalid":
+                text += f". On the last finite pass, {diagnostics['validity_explanation']}"
+            diagnostics["validity_explanation"] = text
+            stale = set(verdict_warnings)
+            extra_warnings = [
+                w for w in extra_warnings if w not in stale and not w.startswith("the fixed point did not")
+            ] + [text]
     from .observables import lcdm_deviation
 
     diagnostics.update(lcdm_deviation(cfg, datasets))
@@ -157,12 +171,11 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
     )
 
 
-def _solve_fixed_point(cfg, model, closure, propagate, plain, progress):
-    import equinox as eqx
-
+def _solver_settings_and_target(cfg):
+    """(SolverSettings, Target or None) of a config's [solver] and [calibration] sections."""
     from . import constants as C
     from ._jax import jnp
-    from .solve import SolverSettings, Target, solve_fixed_point
+    from .solve import SolverSettings, Target
 
     sc = cfg.solver
     settings = SolverSettings(
@@ -179,11 +192,50 @@ def _solve_fixed_point(cfg, model, closure, propagate, plain, progress):
         target = Target(jnp.asarray(h0), "H0")
     elif cal.target == "fraction_spectator":
         target = Target(jnp.asarray(cal.fraction_spectator), "fraction_spectator")
+    return settings, target
+
+
+def _solve_fixed_point(cfg, model, closure, propagate, plain, progress):
+    import equinox as eqx
+
+    from .solve import solve_fixed_point
+
+    settings, target = _solver_settings_and_target(cfg)
 
     def solve(m, cl, start):
         return solve_fixed_point(m, cl, propagate, settings, target, start=start, progress=progress)
 
     return eqx.filter_jit(solve)(model, closure, plain)
+
+
+def _failure_numbers(fp, status: int) -> str:
+    """The figures behind a failed fixed point: for an impossible calibration the variance
+    today and the density the target needs; otherwise the last residuals."""
+    from . import constants as C
+    from .solve import FAULT_STAGES, Status
+
+    res = np.asarray(fp.residuals)[: int(fp.passes)]
+    h = fp.history
+    if status != int(Status.CALIBRATION_FAILED):
+        text = ""
+        stage = int(fp.fault_stage)
+        if stage >= 0:
+            n = float(np.asarray(h.efolds)[int(fp.fault_node)])
+            z = math.expm1(-n)
+            text += f" in the {FAULT_STAGES[stage]} at N = {n:.4g} (z = {z:.3g}), pass {int(fp.passes)}"
+        tail = ", ".join(f"{r:.3g}" for r in res[-3:])
+        return text + f" (last residuals max |delta ln H|: {tail})"
+    i0 = int(np.argmin(np.abs(np.asarray(h.efolds))))
+    a0 = float(np.asarray(fp.propagator["A"])[i0])
+    mp = C.REDUCED_PLANCK_MASS_GEV
+    text = f"; the spectator's variance today is A = {a0:.3g} M_p^2 ({a0 * mp**2:.3g} GeV^2)"
+    if a0 <= 0.0:
+        text += (
+            ", not positive: the modes of the history have re-entered the horizon and decayed, so "
+            "a frozen field with a positive potential has no energy to calibrate (a longer "
+            "inflation or a prehistory, [prehistory], gives it a variance)"
+        )
+    return text
 
 
 def _unphysical_sensitivities(history, prop, closure) -> dict[str, float]:

@@ -27,10 +27,11 @@ implicit function theorem at the fixed point u* = F(u*, theta),
     du*/dtheta = (I - F_u)^{-1} F_theta,    dT/dtheta = T_u du*/dtheta,
 
 where F is one pass (background -> propagator -> closure) and T(u) the target read off the
-history of u. F is linearized once at the fixed point (jax.linearize: forward mode through
-the background and the propagator) and the linear system is solved by GMRES with that
-linearization as its matrix-vector product, so the gradient includes the history's and the
-propagator's response, not only the closure's direct dependence on theta.
+history of u. In adjoint form dT/dtheta = w^T F_theta with (I - F_u)^T w = T_u^T: one
+reverse-mode linearization of the pass at the fixed point (jax.vjp through the background,
+the propagator and the closure) and GMRES with its pullback as the matrix-vector product, so
+the gradient includes the history's and the propagator's response, not only the closure's
+direct dependence on theta.
 
 Everything is written as one jit-able, vmap-able ``lax.while_loop`` (lanes that have
 converged keep their state); progress goes out through a host callback.
@@ -48,6 +49,7 @@ from .background import ExpansionModel, History, expansion_history, today_node
 from .closures import Closure, ClosureInput, ClosureOutput, conservation_slope
 
 __all__ = [
+    "FAULT_STAGES",
     "FixedPoint",
     "SolverSettings",
     "Status",
@@ -72,13 +74,25 @@ _MESSAGES = {
     Status.CONVERGED: "converged",
     Status.MAX_PASSES: "did not converge within solver.max_passes passes: raise solver.max_passes, "
     "or try solver.acceleration = 'picard' with solver.damping < 1",
-    Status.NOT_FINITE: "a pass produced NaN or Inf (see the stage and e-fold reported by the run)",
+    Status.NOT_FINITE: "a pass produced NaN or Inf",
     Status.DIVERGING: "the fixed point is diverging (the residual grew in consecutive passes): "
     "the spectator's feedback on the history is too strong for this closure; lower its coupling "
     "or use solver.acceleration = 'picard' with solver.damping < 1",
     Status.CALIBRATION_FAILED: "calibration failed: no value of the closure's parameter gives the "
     "target (the spectator would need a negative or unreachable energy density today)",
 }
+
+
+#: Stages of a pass, in the order they run, as ``FixedPoint.fault_stage`` indexes them.
+FAULT_STAGES = ("propagator", "closure", "background")
+
+
+def _first_bad(*arrays):
+    """(any non-finite, first grid node where one is) over arrays shaped (..., n)."""
+    bad = jnp.zeros(arrays[0].shape[-1], dtype=bool)
+    for a in arrays:
+        bad = bad | jnp.any(~jnp.isfinite(a.reshape(-1, a.shape[-1])), axis=0)
+    return jnp.any(bad), jnp.argmax(bad)
 
 
 def status_message(status: int) -> str:
@@ -110,7 +124,9 @@ class FixedPoint(eqx.Module):
     eps from the first Friedmann equation differentiated (every component's own rho');
     ``sensitivity``: d ln(target)/d ln|theta| at the solved theta, through the fixed point
     (NaN without calibration); ``contraction``:
-    last residual over the one before (an upper estimate of the fixed point's rate).
+    last residual over the one before (an upper estimate of the fixed point's rate);
+    ``fault_stage``, ``fault_node``: where a NaN/Inf first appeared in the failing pass
+    (stage index into ``FAULT_STAGES``, grid node; -1 when none did).
     """
 
     history: History
@@ -123,6 +139,8 @@ class FixedPoint(eqx.Module):
     friedmann2: jax.Array
     sensitivity: jax.Array
     contraction: jax.Array
+    fault_stage: jax.Array
+    fault_node: jax.Array
 
 
 def _epsilon_slope(history: History):
@@ -202,8 +220,10 @@ _GMRES_TOL = 1e-12
 
 
 def _sensitivity(model, closure, propagate, rho_ref, u_star, i0: int, target: Target):
-    """d ln T/d ln|theta| through the fixed point: (I - F_u) v = F_theta by GMRES on the
-    linearized pass, then d ln T = T_u v (module docstring)."""
+    """d ln T/d ln|theta| through the fixed point, in reverse mode (module docstring):
+    (I - F_u)^T w = T_u^T by GMRES on the transposed linearized pass, then
+    d ln T/d theta = w^T F_theta. Reverse mode because the ODE solves inside a pass (diffrax
+    with checkpointed adjoints) support it everywhere; one backward sweep per Krylov vector."""
     theta = closure.parameter()
 
     def pass_and_target(u, th):
@@ -212,13 +232,22 @@ def _sensitivity(model, closure, propagate, rho_ref, u_star, i0: int, target: Ta
         out = cl(closure_input(hist, propagate(hist), cl.needs_third))
         return jnp.stack([out.density, out.pressure]) / rho_ref, _target_of(hist, i0, target)
 
-    _, lin = jax.linearize(pass_and_target, u_star, theta)
+    _, pullback = jax.vjp(pass_and_target, u_star, theta)
     zero_u = jnp.zeros_like(u_star)
-    f_theta = lin(zero_u, jnp.ones_like(theta))[0]
-    v, _ = jax.scipy.sparse.linalg.gmres(
-        lambda v: v - lin(v, jnp.zeros_like(theta))[0], f_theta, tol=_GMRES_TOL, restart=30, maxiter=5
+    one = jnp.ones((), dtype=u_star.dtype)
+    t_u = pullback((zero_u, one))[0]
+    w, _ = jax.scipy.sparse.linalg.gmres(
+        lambda w: w - pullback((w, jnp.zeros_like(one)))[0],
+        t_u,
+        tol=_GMRES_TOL,
+        restart=30,
+        maxiter=5,
+        # incremental: stops at the first Krylov vector that meets the tolerance (one or two
+        # backward sweeps when the fixed point contracts strongly, as it usually does);
+        # "batched" would always build all 30.
+        solve_method="incremental",
     )
-    d_target = lin(v, jnp.zeros_like(theta))[1]
+    d_target = pullback((w, jnp.zeros_like(one)))[1]
     return d_target * theta
 
 
@@ -285,6 +314,7 @@ def solve_fixed_point(
         "f_prev": jnp.zeros(2 * n),
         "status": jnp.asarray(int(Status.MAX_PASSES)),
         "done": jnp.asarray(False),
+        "fault": jnp.asarray([-1, -1]),
     }
 
     def body(st):
@@ -348,7 +378,36 @@ def solve_fixed_point(
             "f_prev": f,
             "status": jnp.where(status >= 0, status, st["status"]),
             "done": status >= 0,
+            "fault": st["fault"],
         }
+        # A pass that failed (calibration impossible, NaN/Inf) keeps the last good history,
+        # propagator and closure, so that what is reported and written is finite and
+        # describes the state the failure was detected in.
+        failed = (status == int(Status.CALIBRATION_FAILED)) | (status == int(Status.NOT_FINITE))
+        checks = [
+            _first_bad(*(v for v in prop.values() if jnp.issubdtype(v.dtype, jnp.floating))),
+            _first_bad(g),
+            _first_bad(hist.ln_hubble),
+        ]
+        stage = jnp.argmax(jnp.stack([c[0] for c in checks]))
+        node = jnp.stack([c[1] for c in checks])[stage]
+        fault = jnp.where(
+            (status == int(Status.NOT_FINITE)) & jnp.any(jnp.stack([c[0] for c in checks])),
+            jnp.stack([stage, node]),
+            jnp.asarray([-1, -1]),
+        )
+        if_failed = {
+            **st,
+            "prop": prop,
+            "x": x,
+            "out": st["closure"](x),
+            "k": k + 1,
+            "res": res_all,
+            "status": status,
+            "done": True,
+            "fault": fault,
+        }
+        new = _select(failed, if_failed, new)
         return _select(st["done"], st, new)
 
     st = jax.lax.while_loop(lambda s: ~s["done"], body, state)
@@ -363,4 +422,17 @@ def solve_fixed_point(
     last = st["res"][jnp.maximum(k - 1, 0)]
     before = st["res"][jnp.maximum(k - 2, 0)]
     contraction = jnp.where(k >= 2, last / before, jnp.nan)
-    return FixedPoint(hist, st["prop"], cl, out, k, st["res"], st["status"], friedmann2, sens, contraction)
+    return FixedPoint(
+        hist,
+        st["prop"],
+        cl,
+        out,
+        k,
+        st["res"],
+        st["status"],
+        friedmann2,
+        sens,
+        contraction,
+        st["fault"][0],
+        st["fault"][1],
+    )

@@ -93,7 +93,7 @@ def solve_calls(monkeypatch):
     """Replace the solver by a recorder; a test asserts that it was (not) called."""
     calls = []
 
-    def fake(cfg):
+    def fake(cfg, progress=None):
         calls.append(cfg)
         raise AssertionError("the solver must not be called")
 
@@ -102,7 +102,7 @@ def solve_calls(monkeypatch):
 
 
 def fake_solver(monkeypatch, exc: BaseException):
-    def fake(cfg):
+    def fake(cfg, progress=None):
         raise exc
 
     monkeypatch.setattr(backreact.run, "run_scenario", fake)
@@ -264,7 +264,7 @@ def test_run_default_config_is_the_packaged_scenario(workdir, capsys, monkeypatc
     """Without CONFIG, the packaged scenario is validated and handed to the solver."""
     seen = []
 
-    def fake(cfg):
+    def fake(cfg, progress=None):
         seen.append(cfg)
         raise FloatingPointError("stop here")
 
@@ -320,6 +320,27 @@ def test_run_warning_quiet(workdir, capsys):
     assert any("inflation.hubble_GeV" in line and "observational bound" in line for line in warnings)
     assert len(warnings) == len(set(warnings))  # config warnings are not repeated
     assert read_run(target).warnings  # and they are stored in the file
+
+
+def test_run_not_converged_keeps_the_marked_file_and_exits_1(workdir, capsys, monkeypatch):
+    """A fixed point that fails: the file is written, marked not converged, and the command
+    ends with one error line and exit status 1 (DESIGN 2.6)."""
+    real = backreact.run.run_scenario
+
+    def not_converged(cfg, progress=None):
+        res = real(cfg)
+        res.converged = False
+        res.diagnostics["solver_status"] = "did not converge within solver.max_passes passes"
+        return res
+
+    monkeypatch.setattr(backreact.run, "run_scenario", not_converged)
+    config = write(workdir / "small.toml", SMALL)
+    target = workdir / "nc.h5"
+    code = cli.main(["run", str(config), "-o", str(target), "-q"])
+    out, err = capsys.readouterr()
+    assert code == 1
+    assert lines(err)[-1].startswith("error: not converged") and "max_passes" in lines(err)[-1]
+    assert target.is_file() and not read_run(target).converged
 
 
 # --------------------------------------------------------------------------------------

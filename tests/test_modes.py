@@ -2,71 +2,18 @@
 
 from __future__ import annotations
 
-import functools
 import math
 
 import numpy as np
 import pytest
-from helpers import solved
+from mode_helpers import de_sitter, identity_error, run, short
 
 import backreact._jax  # noqa: F401  (x64)
-from backreact.propagator import HistorySpline, ModeSettings, exact_propagator, mode_plan, spline_from_history
+from backreact.propagator import HistorySpline, ModeSettings, exact_propagator, mode_plan
 
 # A short history with every era: 20 e-folds of plateau inflation, instant reheating,
 # radiation, matter and a cosmological-constant era (small grid: fast in CI).
 SHORT = "[inflation]\nmodel = 'plateau'\nefolds = 20.0\n[cosmology]\nomega_lambda = 0.316\n"
-
-
-def _run(spline, out, settings, oracle=False, ln_mu=0.0, third=False):
-    import equinox as eqx
-    import jax.numpy as jnp
-
-    out = jnp.asarray(out)
-    plan = mode_plan(spline, out, settings, oracle=oracle)
-    f = eqx.filter_jit(
-        lambda sp, n: exact_propagator(
-            sp, n, plan, ln_mu=ln_mu, settings=settings, oracle=oracle, third=third
-        )
-    )
-    return {k: np.asarray(v) for k, v in f(spline, out).items()}
-
-
-def _de_sitter(n_max=8.0):
-    import jax.numpy as jnp
-
-    nodes = jnp.linspace(0.0, n_max, 81)
-    return HistorySpline(nodes, jnp.zeros_like(nodes), jnp.zeros_like(nodes))
-
-
-@functools.cache
-def _short(oracle=False, **kw):
-    cfg, model, h = solved(SHORT, **{k: v for k, v in kw.items() if k.startswith("cosmology__")})
-    settings = ModeSettings(**{k: v for k, v in kw.items() if not k.startswith("cosmology__")})
-    sp = spline_from_history(h)
-    return model, h, _run(sp, h.efolds, settings, oracle=oracle, ln_mu=float(h.ln_hubble[0]))
-
-
-def _window_max(efolds, values, half_window=0.5):
-    """max |values| within +-half_window e-folds of each point: the local size of a quantity
-    that changes sign (Box A in reheating), so that a zero crossing is not an error."""
-    size = np.abs(values)
-    return np.array([np.max(size[np.abs(efolds - t) <= half_window]) for t in efolds])
-
-
-def _eras(h):
-    """Masks of the eras of a history: inflation before its last e-fold, +-1 e-fold around the
-    end of inflation (the instant-reheating junction), radiation while the infrared end of the
-    k grid is still outside the horizon, and the matter and Lambda eras."""
-    n, eps = h.efolds, h.epsilon
-    lah = n + h.ln_hubble
-    n_end = n[np.argmax(lah)]
-    x_ir = np.exp(lah[0] - lah)  # k_IR / aH
-    return {
-        "inflation": n < n_end - 1,
-        "end of inflation": np.abs(n - n_end) <= 1,
-        "radiation": (n > n_end + 1) & (eps > 1.9) & (x_ir < 0.1),
-        "matter and Lambda": (n > n_end + 1) & (eps < 1.6),
-    }
 
 
 def test_de_sitter_growth_law_with_the_ir_boundary_term():
@@ -78,7 +25,7 @@ def test_de_sitter_growth_law_with_the_ir_boundary_term():
     # relative; the default path is bitwise unchanged by the option). The times 5.02 .. 5.08
     # sample the aliasing of the k sum, periodic in N with period 2 dlnk = 0.1 (Simpson).
     n = np.array([0.5, 1.0, 2.0, 5.0, 5.02, 5.04, 5.06, 5.08, 7.0])
-    r = _run(_de_sitter(), n, ModeSettings(), third=True)
+    r = run(de_sitter(), n, ModeSettings(), third=True)
     exact = (n - np.exp(-2 * n) / 2) / (4 * math.pi**2)
     np.testing.assert_allclose(r["A"], exact, rtol=0, atol=1e-7)
     assert abs(r["A"][3] - 0.1266509046) < 1e-7
@@ -107,114 +54,13 @@ def test_exact_method_equals_the_complex_oracle_in_every_era():
     # grid, same stop and continuation: A within 1e-6, A' within 1e-5, Box A within 1e-4
     # (relative to the local scale of each quantity), in inflation, reheating, radiation,
     # matter and the Lambda era. Measured: 1e-8, 4e-7, 3e-7.
-    model, h, exact = _short()
-    _, _, oracle = _short(oracle=True)
+    model, h, exact = short()
+    _, _, oracle = short(oracle=True)
     for seg, s in model.segment_slices.items():
         for name, tol in (("A", 1e-6), ("dA", 1e-5), ("box", 1e-4), ("kinetic", 1e-4)):
             a, b = exact[name][s], oracle[name][s]
             scale = np.maximum(np.abs(b), 1e-300)
             assert np.max(np.abs(a - b) / scale) < tol, (seg, name, np.max(np.abs(a - b) / scale))
-
-
-def _by_era(inflation, end, radiation, matter):
-    return {
-        "inflation": inflation,
-        "end of inflation": end,
-        "radiation": radiation,
-        "matter and Lambda": matter,
-    }
-
-
-@pytest.mark.parametrize(
-    "change, tol",
-    [
-        # k density 20 -> 40 per e-fold. Measured (A, A', Box A, K_ren) in inflation 4e-8, 2e-6,
-        # 3e-5, 3e-6; within one e-fold of the end of inflation 1.4e-6, 1.1e-3, 5e-3, 5e-3;
-        # radiation 9e-8, 1.8e-4, 5.8e-3, 5.8e-3; matter and Lambda 5e-7.
-        (
-            {"modes_per_efold": 40.0},
-            {
-                "A": _by_era(1e-7, 5e-6, 5e-7, 2e-6),
-                "dA": _by_era(1e-5, 3e-3, 5e-4, 2e-6),
-                "box": _by_era(1e-4, 2e-2, 2e-2, 2e-6),
-                "kinetic": _by_era(1e-4, 2e-2, 2e-2, 2e-6),
-            },
-        ),
-        # integrator tolerance 1e-10 -> 1e-11: measured <= 9e-8, 9e-7, 6e-6, 5e-6
-        pytest.param(
-            {"rtol": 1e-11, "atol": 1e-13},
-            {
-                n: _by_era(t, t, t, t)
-                for n, t in (("A", 3e-7), ("dA", 3e-6), ("box", 2e-5), ("kinetic", 2e-5))
-            },
-            marks=pytest.mark.slow,
-        ),
-        # hand-over 1e-2 -> 3e-3 (the dropped decaying mode, DESIGN: < 1e-9 at x_h = 1e-2):
-        # measured <= 1.3e-10, 2.3e-9, 4e-9, 4e-9
-        pytest.param(
-            {"handover_x": 3e-3},
-            {n: _by_era(1e-8, 1e-8, 1e-8, 1e-8) for n in ("A", "dA", "box", "kinetic")},
-            marks=pytest.mark.slow,
-        ),
-        # stop 30 -> 60. Measured: unchanged during inflation and in matter/Lambda (< 4e-10);
-        # radiation 7e-9, 6e-5, 2.3e-3, 2.3e-3; within one e-fold of the end of inflation 1.3e-5,
-        # 1.1e-2, 7e-2, 8e-2: the kink of eps at the instant-reheating junction excites every
-        # mode, |beta| ~ x^-3, and the modes stopped at x = 30 before it miss that (their
-        # continuation assumes adiabatic evolution after the stop).
-        (
-            {"stop_x": 60.0},
-            {
-                "A": _by_era(1e-9, 5e-5, 5e-8, 1e-9),
-                "dA": _by_era(1e-9, 3e-2, 2e-4, 1e-9),
-                "box": _by_era(1e-9, 0.2, 1e-2, 1e-9),
-                "kinetic": _by_era(1e-9, 0.2, 1e-2, 1e-9),
-            },
-        ),
-        # top of the k grid 40 -> 100 max(aH) (the cut-off; DESIGN 3 item 4: A independent of
-        # k_c to 1e-6 once k_c > 10 max(aH)): measured 6e-9 in A and 2.3e-6 in A' (radiation),
-        # and within one e-fold of the end of inflation 3e-9, 1e-4, 3.4e-4, 5e-4 (the junction)
-        pytest.param(
-            {"k_margin": math.log(100.0)},
-            {
-                "A": _by_era(1e-7, 1e-7, 1e-7, 1e-7),
-                "dA": _by_era(1e-5, 3e-4, 1e-5, 1e-5),
-                "box": _by_era(1e-3, 1e-3, 1e-3, 1e-3),
-                "kinetic": _by_era(1e-3, 2e-3, 1e-3, 1e-3),
-            },
-            marks=pytest.mark.slow,
-        ),
-    ],
-)
-def test_exact_method_converges(change, tol):
-    # Halving dlnk, tightening the tolerance, moving the hand-over outward, the stop inward
-    # and the top of the k grid change A, A', Box A and K_ren by less than the stated
-    # tolerances, relative to max(local size, natural size H^2/(4 pi^2) or H^4/(16 pi^2)),
-    # the local size being the largest |value| within +-0.5 e-fold (Box A and K change sign
-    # after inflation; DESIGN 3 item 5a normalizes by H^4/(16 pi^2) for the same reason).
-    model, h, base = _short()
-    _, _, new = _short(**change)
-    h2 = np.exp(2 * h.ln_hubble)
-    natural = {"A": h2 / (4 * math.pi**2), "dA": h2 / (4 * math.pi**2)}
-    eras = _eras(h)
-    for name, by_era in tol.items():
-        scale = np.maximum(_window_max(h.efolds, base[name]), natural.get(name, h2**2 / (16 * math.pi**2)))
-        err = np.abs(base[name] - new[name]) / scale
-        for era, t in by_era.items():
-            assert eras[era].any(), era
-            assert err[eras[era]].max() < t, (change, name, era, err[eras[era]].max())
-
-
-def test_late_acceleration_unchanged_when_the_history_is_cut_at_today():
-    # DESIGN 3 item 5b: a history ending just after today (z = -0.01 instead of -0.5) gives
-    # the same A, A', Box A today to 1e-6: modes that exit a second time in the Lambda era
-    # are integrated straight through, nothing depends on how far the run continues.
-    model, h, base = _short()
-    model2, h2, cut = _short(cosmology__final_redshift=-0.01)
-    i = int(np.argmin(np.abs(h.efolds)))
-    j = int(np.argmin(np.abs(h2.efolds)))
-    assert h.efolds[i] == 0.0 and h2.efolds[j] == 0.0
-    for name in ("A", "dA", "box"):
-        assert abs(cut[name][j] / base[name][i] - 1) < 1e-6, (name, cut[name][j], base[name][i])
 
 
 def test_gradient_with_respect_to_the_history_is_finite():
@@ -225,7 +71,7 @@ def test_gradient_with_respect_to_the_history_is_finite():
     import jax
     import jax.numpy as jnp
 
-    sp = _de_sitter()
+    sp = de_sitter()
     out = jnp.array([5.0])
     settings = ModeSettings()
     plan = mode_plan(sp, out, settings)
@@ -261,7 +107,7 @@ def test_power_law_inflation_matches_the_closed_form():
     # At N = 10 the infrared-most mode has x = e^{-9}: the kernel's frozen-amplitude
     # treatment of it is exact to O(x^2) ~ 1e-8 (at N = 4 it is 9e-5 off, x = 0.027).
     out = np.array([10.0, 11.0])
-    ex = _run(sp, out, ModeSettings(), ln_mu=0.0)
+    ex = run(sp, out, ModeSettings(), ln_mu=0.0)
     n_k = required_k_nodes(sp, 12.0, 20.0)
     mk = eqx.filter_jit(
         lambda s, n: memory_kernel_propagator(
@@ -270,15 +116,6 @@ def test_power_law_inflation_matches_the_closed_form():
     )(sp, jnp.asarray(out))
     np.testing.assert_allclose(ex["A"], np.asarray(mk["A"]), rtol=1e-6)
     np.testing.assert_allclose(ex["dA"], np.asarray(mk["dA"]), rtol=1e-5)
-
-
-def _identity_error(r, h2, efolds=None):
-    """|Box A - 2 (K_ren + L)| relative to max(|Box A|, H^4/(16 pi^2)) (DESIGN 3 item 5a),
-    with |Box A| its local size (largest within +-0.5 e-fold) when the efolds are given."""
-    box = np.asarray(r["box"])
-    size = np.abs(box) if efolds is None else _window_max(efolds, box)
-    scale = np.maximum(size, h2**2 / (16 * math.pi**2))
-    return np.abs(box - 2 * (r["kinetic"] + r["local_box"])) / scale
 
 
 @pytest.mark.parametrize(
@@ -309,83 +146,7 @@ def test_box_identity_during_inflation(label, eps_of_n, tol):
     # N >= 5: the infrared end of the grid is then > 10x outside the horizon; at N = 3
     # (k_IR/aH = 0.12 for eps = 0.3) the identity is 3e-4 off (the edge of the k sum).
     out = np.array([5.0, 8.0])
-    r = _run(sp, out, ModeSettings(), ln_mu=0.0)
+    r = run(sp, out, ModeSettings(), ln_mu=0.0)
     h2 = np.exp(2 * np.asarray(sp.ln_hubble(jnp.asarray(out))))
-    err = _identity_error(r, h2)
+    err = identity_error(r, h2)
     assert err.max() < tol, (label, err)
-
-
-def test_box_identity_in_every_era_of_a_full_history():
-    # DESIGN 3 item 5a on the 20-e-fold history with every era, at 40 modes per e-fold (the
-    # standing waves of re-entered modes need it for Box A). Measured: 1.2e-4 during
-    # inflation, 3.5e-3 within one e-fold of its end (the kink of eps at the instant-reheating
-    # junction excites modes far inside, x > 24, where the kinetic sum uses its adiabatic
-    # tail), 3.6e-4 in radiation (9.4e-4 at 20 per e-fold), 1e-15 in the matter and Lambda
-    # eras (every mode deep inside: both sides are the same envelope sum). Radiation is taken
-    # while the infrared end of the k grid is outside the horizon (this short history's k_IR
-    # re-enters at N ~ -42, after which A ~ 1e-16).
-    model, h, r = _short(modes_per_efold=40.0)
-    err = _identity_error(r, np.exp(2 * h.ln_hubble), h.efolds)
-    tol = {"inflation": 2e-4, "end of inflation": 1e-2, "radiation": 1e-3, "matter and Lambda": 1e-10}
-    for name, sel in _eras(h).items():
-        assert sel.any(), name
-        assert err[sel].max() < tol[name], (name, err[sel].max())
-
-
-# About 190 s of compilation for 375 dense output times: a convergence-style study, run with
-# BACKREACT_SLOW=1 (the de Sitter test keeps the third derivative in the default set).
-@pytest.mark.slow
-def test_third_derivative_is_the_derivative_of_the_second_in_every_era():
-    # A''' (third=True: the third-order mode continuation, no finite differences in the code)
-    # against a fourth-order central difference of the method's own A'' (step 2e-3, five
-    # output times around the middle of every fourth interval of the short history with every
-    # era; off the nodes, where eps_N and so A''' jump). Relative to max(local size of A''',
-    # H^2/(4 pi^2)), the local size being the largest |A'''| within +-0.5 e-fold. Measured:
-    # inflation 3.1e-4, within one e-fold of its end 9.5e-5, radiation 8.2e-4, matter and
-    # Lambda 3e-10. In inflation and radiation this is the noise of the difference itself
-    # (A'' carries ODE and dense-output errors ~1e-7 of its scale, divided by the step), and
-    # in radiation also its truncation (the standing waves of re-entered modes turn at
-    # ~2x = 60 per e-fold near the stop).
-    import jax.numpy as jnp
-
-    from backreact.propagator.modes import _X_SPLIT
-
-    _, h, _ = _short()
-    nodes = np.asarray(h.efolds)
-    centers = (0.5 * (nodes[1:] + nodes[:-1]))[::4]
-    step = 2e-3
-    offsets = np.array([-2.0, -1.0, 0.0, 1.0, 2.0]) * step
-    out = (centers[:, None] + offsets).ravel()  # increasing: intervals are wider than 4 steps
-    sp = spline_from_history(h)
-    r = _run(sp, out, ModeSettings(), ln_mu=float(h.ln_hubble[0]), third=True)
-    d2 = r["d2A"].reshape(-1, 5)
-    d3 = r["d3A"].reshape(-1, 5)[:, 2]
-    fd = (8.0 * (d2[:, 3] - d2[:, 1]) - (d2[:, 4] - d2[:, 0])) / (12.0 * step)
-    # The Filon window of the interference is placed from the output time (fixed under the
-    # t-derivatives) and moves by one k node whenever ln(aH) + ln(_X_SPLIT[0]) crosses one:
-    # A'' jumps there (up to ~2% of its local size in radiation, a property of the A'' of the
-    # method, not of A'''), so stencils straddling such a move are no smooth check; skipped.
-    lah = out + np.asarray(sp.ln_hubble(jnp.asarray(out)))
-    dlnk = 1.0 / ModeSettings().modes_per_efold
-    lah_start = float(h.efolds[0] + h.ln_hubble[0])  # ln k of the first mode (k_IR)
-    cell = np.floor((lah + math.log(_X_SPLIT[0]) - lah_start) / dlnk).reshape(-1, 5)
-    smooth = np.all(cell == cell[:, :1], axis=1)
-    lnh_c = np.asarray(sp.ln_hubble(jnp.asarray(centers)))
-    natural = np.exp(2 * lnh_c) / (4 * math.pi**2)
-    size = np.array([np.max(np.abs(d3)[np.abs(centers - t) <= 0.5]) for t in centers])
-    err = np.abs(fd - d3) / np.maximum(size, natural)
-    eps_c = np.interp(centers, nodes, h.epsilon)
-    lah_nodes = nodes + h.ln_hubble
-    n_end = nodes[np.argmax(lah_nodes)]
-    x_ir = np.exp(lah_nodes[0] - centers - lnh_c)
-    eras = {
-        "inflation": centers < n_end - 1,
-        "end of inflation": np.abs(centers - n_end) <= 1,
-        "radiation": (centers > n_end + 1) & (eps_c > 1.9) & (x_ir < 0.1),
-        "matter and Lambda": (centers > n_end + 1) & (eps_c < 1.6),
-    }
-    tol = {"inflation": 1e-3, "end of inflation": 1e-3, "radiation": 3e-3, "matter and Lambda": 1e-8}
-    for name, sel in eras.items():
-        sel = sel & smooth
-        assert sel.sum() >= 5, (name, sel.sum())
-        assert err[sel].max() < tol[name], (name, err[sel].max())

@@ -285,7 +285,9 @@ def test_transfer_kernel_blend_and_log_derivatives():
         jet = [np.asarray(v) for v in S.transfer_kernel_lnz(p, jnp.asarray(z))]
         t_ex = np.asarray(S.bessel_transfer(p, jnp.asarray(z))[0])
         t_av = np.asarray(S.bessel_transfer_average(p, jnp.asarray(np.maximum(z, 30.0))))
-        assert np.max(np.abs(jet[0] - t_ex)[z <= 30.0]) == 0.0
+        # the same series on both paths: equal up to the rounding of differently fused code;
+        # T <= 1 (T(0) = 1, zeros of J in between), so 1e-15 absolute is a few ulps
+        assert np.max(np.abs(jet[0] - t_ex)[z <= 30.0]) < 1e-15
         assert np.max(np.abs(jet[0] - t_av)[z >= 36.0]) < 1e-15
         h = 1e-5
         for order in range(3):
