@@ -217,6 +217,51 @@ def _target_of(history: History, i0: int, target: Target):
 
 
 _GMRES_TOL = 1e-12
+_GMRES_SIZE = 30
+
+
+def _gmres(matvec, b, tol: float, size: int):
+    """x with |matvec(x) - b| <= tol |b| by GMRES (Saad & Schultz 1986, SIAM J. Sci. Stat.
+    Comput. 7, 856) without restarts: Arnoldi with twice-applied Gram-Schmidt on at most
+    ``size`` Krylov vectors, stopping at the first that meets the tolerance.
+
+    Written here rather than taken from jax.scipy because that one wraps the solve in
+    lax.custom_linear_solve, which must linearize ``matvec``; a matvec that is itself the
+    pullback of checkpointed ODE solves (diffrax) cannot be linearized again.
+    """
+    n = b.shape[0]
+    beta = jnp.linalg.norm(b)
+    basis = jnp.zeros((size + 1, n), b.dtype).at[0].set(b / jnp.where(beta > 0, beta, 1.0))
+    hess = jnp.zeros((size + 1, size), b.dtype)
+    e1 = jnp.zeros(size + 1, b.dtype).at[0].set(beta)
+
+    def small_solve(hess):
+        y = jnp.linalg.lstsq(hess, e1)[0]
+        return y, jnp.linalg.norm(hess @ y - e1)
+
+    def cond(c):
+        k, _, _, res = c
+        return (k < size) & (res > tol * beta)
+
+    def body(c):
+        k, basis, hess, _ = c
+        w = matvec(basis[k])
+        mask = (jnp.arange(size + 1) <= k).astype(b.dtype)
+        h = (basis @ w) * mask
+        w = w - h @ basis
+        h2 = (basis @ w) * mask  # second pass: orthogonal to round-off
+        w = w - h2 @ basis
+        h = h + h2
+        norm = jnp.linalg.norm(w)
+        h = h.at[k + 1].set(norm)
+        basis = basis.at[k + 1].set(w / jnp.where(norm > 0, norm, 1.0))
+        hess = hess.at[:, k].set(h)
+        return k + 1, basis, hess, small_solve(hess)[1]
+
+    init = (jnp.asarray(0), basis, hess, beta)
+    _, basis, hess, _ = jax.lax.while_loop(cond, body, init)
+    y, _ = small_solve(hess)
+    return y @ basis[:size]
 
 
 def _sensitivity(model, closure, propagate, rho_ref, u_star, i0: int, target: Target):
@@ -236,17 +281,13 @@ def _sensitivity(model, closure, propagate, rho_ref, u_star, i0: int, target: Ta
     zero_u = jnp.zeros_like(u_star)
     one = jnp.ones((), dtype=u_star.dtype)
     t_u = pullback((zero_u, one))[0]
-    w, _ = jax.scipy.sparse.linalg.gmres(
-        lambda w: w - pullback((w, jnp.zeros_like(one)))[0],
-        t_u,
-        tol=_GMRES_TOL,
-        restart=30,
-        maxiter=5,
-        # incremental: stops at the first Krylov vector that meets the tolerance (one or two
-        # backward sweeps when the fixed point contracts strongly, as it usually does);
-        # "batched" would always build all 30.
-        solve_method="incremental",
-    )
+    shape = u_star.shape
+
+    def matvec(wf):
+        w = wf.reshape(shape)
+        return (w - pullback((w, jnp.zeros_like(one)))[0]).reshape(-1)
+
+    w = _gmres(matvec, t_u.reshape(-1), _GMRES_TOL, _GMRES_SIZE).reshape(shape)
     d_target = pullback((w, jnp.zeros_like(one)))[1]
     return d_target * theta
 
