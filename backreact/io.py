@@ -87,6 +87,8 @@ HISTORY_DATASETS: dict[str, tuple[str, str]] = {
     "fraction_spectator": ("1", "density fraction of the spectator field"),
     "temperature": ("GeV", "photon temperature; NaN during inflation"),
     "hubble_km_s_Mpc": ("km/s/Mpc", "Hubble rate H in km/s/Mpc"),
+    "hubble_normalized": ("1", "expansion rate relative to today, E = H / H0"),
+    "deceleration": ("1", "deceleration parameter q = -a a_tt / a_t^2 = epsilon - 1"),
     "propagator": ("GeV^2", "coincident propagator A of the spectator field"),
     "propagator_dN": ("GeV^2", "first derivative dA/dN of the coincident propagator"),
     "propagator_dNdN": ("GeV^2", "second derivative d^2A/dN^2 of the coincident propagator"),

@@ -58,6 +58,8 @@ def history_datasets(history) -> dict[str, np.ndarray]:
         "hubble_km_s_Mpc": C.hubble_gev_to_km_s_mpc(hubble),
         "epsilon": eps,
         "w_effective": -1.0 + 2.0 * eps / 3.0,
+        "hubble_normalized": hubble / hubble[int(np.argmin(np.abs(n)))],
+        "deceleration": deceleration(eps),
         "temperature": np.where(
             np.isfinite(_np(history.ln_temperature)), np.exp(_np(history.ln_temperature)) * mp, np.nan
         ),

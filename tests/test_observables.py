@@ -83,3 +83,15 @@ def test_run_expansion_rate_and_age_match_astropy(lcdm_run):
     np.testing.assert_allclose(e_run, ref.efunc(z[sel]), rtol=1e-6)
     age = float(h.age) / C.REDUCED_PLANCK_MASS_GEV * C.INV_GEV_S / C.GYR_S
     assert age == pytest.approx(ref.age(0).to_value(units.Gyr), rel=1e-6)
+
+
+def test_normalized_expansion_rate_and_deceleration_datasets(lcdm_run):
+    # E = H/H0 is 1 today exactly (the grid has a node at N = 0); q = eps - 1 (definition).
+    h, ds, ref, units = lcdm_run
+    assert ds["hubble_normalized"][today_index(h)] == 1.0
+    np.testing.assert_array_equal(ds["deceleration"], ds["epsilon"] - 1.0)
+    # Source: astropy FlatLambdaCDM q(z) = Omega_m(z)/2 + Omega_r(z) - Omega_Lambda(z) today;
+    # for Planck-like parameters q0 ~ -0.53 (from memory), here to 1e-6 of astropy's value.
+    z0 = 0.0
+    q0 = 0.5 * ref.Om(z0) + ref.Ogamma(z0) + ref.Onu(z0) - ref.Ode(z0)
+    assert ds["deceleration"][today_index(h)] == pytest.approx(q0, rel=1e-6)

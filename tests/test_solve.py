@@ -215,3 +215,25 @@ def test_calibration_sensitivity_goes_through_the_fixed_point():
     ln_h0 = [float(f.history.ln_hubble[i0]) for f in (up, down)]
     fd = (ln_h0[0] - ln_h0[1]) / (2.0 * step)
     assert float(fp.sensitivity) == pytest.approx(fd, rel=1e-5)
+
+
+def test_a_batch_of_solves_equals_the_single_solves():
+    # The loop is vmap-able (sweeps batch it): two couplings in one vmapped solve, the lane
+    # that converges first is masked and keeps its state, so each lane equals its own single
+    # solve (same passes; 1e-12 in ln H allows for the batched arithmetic's rounding).
+    model = _model()[1]
+    n = model.size
+    start, source = _plain(), (jnp.zeros(n), jnp.zeros(n))
+    values = jnp.asarray([0.5 * COUPLING, COUPLING])
+
+    def one(value):
+        closure = UserClosure(value, effective_coupling)
+        return _solve_impl(model, closure, start, source, SolverSettings(), None)
+
+    batch = eqx.filter_jit(eqx.filter_vmap(one))(values)
+    for lane, value in enumerate(values):
+        single = _solve(float(value))
+        assert int(batch.passes[lane]) == int(single.passes)
+        np.testing.assert_allclose(
+            batch.history.ln_hubble[lane], single.history.ln_hubble, rtol=0, atol=1e-12
+        )
