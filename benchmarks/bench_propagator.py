@@ -14,21 +14,10 @@ these machines are noisy.
 from __future__ import annotations
 
 import resource
-import statistics
 import sys
 import time
 
-
-def _timed(f, *args, repeat=3):
-    import jax
-
-    jax.block_until_ready(f(*args))
-    ts = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        jax.block_until_ready(f(*args))
-        ts.append(time.perf_counter() - t0)
-    return statistics.median(ts)
+from _timing import warm_time
 
 
 def main(argv):
@@ -59,7 +48,7 @@ def main(argv):
     t0 = time.perf_counter()
     jax.block_until_ready(exact(sp, out))
     t_first = time.perf_counter() - t0
-    t_exact = _timed(exact, sp, out)
+    t_exact = warm_time(exact, sp, out)
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
     print(
         f"exact method: compile + first run {t_first:7.2f} s, warm run {t_exact:7.3f} s, "
@@ -80,7 +69,7 @@ def main(argv):
             lambda s, n: exact_propagator(s, n, plan_o, ln_mu=ln_mu, settings=st, oracle=True)
         )
         sol_f = eqx.filter_jit(lambda s, n: M.solve_modes(s, n, plan_o, st, True))
-        t_integration = max(_timed(integ, sp, out, repeat=1) - _timed(sol_f, sp, out, repeat=1), 0.0)
+        t_integration = max(warm_time(integ, sp, out, repeat=1) - warm_time(sol_f, sp, out, repeat=1), 0.0)
         t_loop = t_loop_modes + t_integration
         print(
             f"plain mode-by-mode complex sum: {t_loop:7.2f} s "
@@ -98,7 +87,7 @@ def main(argv):
             )
         )
         # a few ms per run on a shared machine: the median of many runs
-        return _timed(f, sp, n, repeat=15)
+        return warm_time(f, sp, n, repeat=15)
 
     t_kernel = kernel_at(out)
     print(f"memory kernel: warm run {t_kernel:7.3f} s; exact / kernel = {t_exact / t_kernel:6.1f}x")

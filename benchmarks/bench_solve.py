@@ -14,20 +14,10 @@ noisy, and the ratios are what the targets are stated in.
 
 from __future__ import annotations
 
-import statistics
 import sys
 import time
 
-
-def _warm(f, *args, repeat=3):
-    import jax
-
-    ts = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        jax.block_until_ready(f(*args))
-        ts.append(time.perf_counter() - t0)
-    return statistics.median(ts)
+from _timing import warm_time
 
 
 def bench(path: str) -> None:
@@ -64,14 +54,14 @@ def bench(path: str) -> None:
     jax.block_until_ready(fp.history.ln_hubble)
     t_compile_cal = time.perf_counter() - t0
     jax.block_until_ready(prop_jit(fp.history))
-    t_prop = _warm(prop_jit, fp.history)
-    t_cal = _warm(solve_jit, model, closure, plain, target)
+    t_prop = warm_time(prop_jit, fp.history)
+    t_cal = warm_time(solve_jit, model, closure, plain, target)
     passes_cal = int(fp.passes)
 
     fixed = fp.closure  # the calibrated parameter, now held fixed
     fp_u = solve_jit(model, fixed, plain, None)
     jax.block_until_ready(fp_u.history.ln_hubble)
-    t_unc = _warm(solve_jit, model, fixed, plain, None)
+    t_unc = warm_time(solve_jit, model, fixed, plain, None)
     passes_unc = int(fp_u.passes)
 
     method = cfg.propagator.method
