@@ -1,4 +1,4 @@
-"""Command-line interface: ``backreact run``, ``backreact show`` and ``backreact keys``.
+"""Command-line interface: ``backreact run``, ``show``, ``compare``, ``lcdm-table``, ``plot`` and ``keys``.
 
 Exit codes (the contract scripts and batch jobs rely on):
 
@@ -388,6 +388,318 @@ def _scenario_title(config_toml: str) -> str:
     except (tomllib.TOMLDecodeError, AttributeError, TypeError):
         name = None
     return f"scenario {name}" if isinstance(name, str) and name else "summary"
+
+
+# ======================================================================================
+# compare
+# ======================================================================================
+
+_STAT_ROWS: tuple[tuple[str, str], ...] = (
+    ("ratio_mean", "mean H_model / H_table"),
+    ("ratio_min", "min H_model / H_table"),
+    ("ratio_max", "max H_model / H_table"),
+    ("max_abs_deviation", "max |H_model / H_table - 1| in range"),
+    ("chi2", "chi^2"),
+    ("chi2_per_point", "chi^2 per point"),
+)
+
+
+def _fmt_ratio(value: float) -> str:
+    """A ratio near 1 with 7 decimals, so that small departures show."""
+    return f"{value:.7f}" if math.isfinite(value) else _fmt(value)
+
+
+def _read_run_or_fail(path: Path) -> Any:
+    from backreact.io import RunFileError, read_run
+
+    try:
+        return read_run(path)
+    except RunFileError as exc:
+        raise _fail(EXIT_INPUT, exc) from None
+
+
+def _tables_or_fail(specs: Sequence[str]) -> list[Any]:
+    from backreact.tables import TableError, resolve_table
+
+    try:
+        return [resolve_table(spec) for spec in specs]
+    except TableError as exc:
+        raise _fail(EXIT_INPUT, exc) from None
+
+
+def _comparison_tables(result: Any, run_name: str) -> list[Table]:
+    lcdm = result.lcdm_model
+    z_lo, z_hi = result.z_range
+    out = []
+    for t in result.tables:
+        table = _table(
+            f"{run_name} vs {t.table.name} ({t.points_in_range} of {len(t.table)} points "
+            f"in [{_fmt(z_lo)}, {_fmt(z_hi)}])",
+            ("statistic", {}),
+            ("run", {"justify": "right", "no_wrap": True}),
+            ("matching LambdaCDM", {"justify": "right", "no_wrap": True}),
+        )
+        for key, label in _STAT_ROWS:
+            if key in t.run:
+                show = _fmt_ratio if key.startswith("ratio") else _fmt
+                _add_row(table, label, show(t.run[key]), show(t.lcdm[key]))
+        out.append(table)
+    if result.lcdm is not None:
+        stats = result.lcdm.statistics()
+        table = _table(
+            f"{run_name} / matching LambdaCDM "
+            f"({len(result.lcdm.redshift)} z in [{_fmt(z_lo)}, {_fmt(z_hi)}])",
+            ("statistic", {}),
+            ("value", {"justify": "right", "no_wrap": True}),
+        )
+        _add_row(table, "mean H_run / H_LCDM", _fmt_ratio(stats["ratio_mean"]))
+        _add_row(table, "min H_run / H_LCDM", _fmt_ratio(stats["ratio_min"]))
+        _add_row(table, "max H_run / H_LCDM", _fmt_ratio(stats["ratio_max"]))
+        _add_row(table, "max |H_run / H_LCDM - 1|", _fmt(stats["max_abs_deviation"]))
+        _add_row(table, "  at redshift", _fmt(stats["redshift_of_max_deviation"]))
+        out.append(table)
+    params = _table(
+        "matching flat LambdaCDM",
+        ("parameter", {}),
+        ("value", {"justify": "right", "no_wrap": True}),
+    )
+    for label, value in (
+        ("H0 [km/s/Mpc]", lcdm.H0_km_s_Mpc),
+        ("omega_b", lcdm.omega_b),
+        ("omega_c", lcdm.omega_c),
+        ("T_CMB [K]", lcdm.cmb_temperature_K),
+        ("N_eff (massless)", lcdm.n_eff),
+        ("Omega_m", lcdm.Omega_m),
+        ("Omega_r", lcdm.Omega_r),
+        ("Omega_lambda", lcdm.Omega_lambda),
+    ):
+        _add_row(params, label, _fmt(value))
+    out.append(params)
+    return out
+
+
+@app.command()
+def compare(
+    run_file: Annotated[
+        Path,
+        typer.Argument(help="Run file written by 'backreact run'.", show_default=False, metavar="RUN.h5"),
+    ],
+    table: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--table",
+            "-t",
+            help="H(z) table to compare with: a CSV file (z, H in km/s/Mpc, optional sigma) or the "
+            "name of a shipped data set (cosmic_chronometers). Repeat for several.",
+            show_default=False,
+            metavar="TABLE",
+        ),
+    ] = None,
+    lcdm: Annotated[
+        bool,
+        typer.Option("--lcdm", help="Also compare H(z) with the run's matching flat LambdaCDM on a grid."),
+    ] = False,
+    z_min: Annotated[float, typer.Option("--z-min", help="Lower end of the redshift range.")] = 0.0,
+    z_max: Annotated[float, typer.Option("--z-max", help="Upper end of the redshift range.")] = 2.5,
+    store: Annotated[
+        bool,
+        typer.Option("--store/--no-store", help="Store the result in the run file's comparison group."),
+    ] = True,
+) -> None:
+    """Compare a run's H(z) with H(z) tables and with its matching flat LambdaCDM."""
+    from backreact.compare import compare_run
+    from backreact.io import RunFileError, update_comparison
+
+    specs = list(table or [])
+    if not specs and not lcdm:
+        raise _fail(EXIT_INPUT, "nothing to compare: give --table TABLE (repeatable) and/or --lcdm")
+    record = _read_run_or_fail(run_file)
+    tables = _tables_or_fail(specs)
+    if not record.converged:
+        _warning(f"{run_file} is marked not converged; its H(z) is the last finite pass")
+    try:
+        result = compare_run(
+            record.history,
+            record.config_toml,
+            record.today.get("H0_km_s_Mpc", float("nan")),
+            tables,
+            with_lcdm=lcdm,
+            z_range=(z_min, z_max),
+        )
+    except ValueError as exc:
+        raise _fail(EXIT_INPUT, f"cannot compare {run_file}: {exc}") from None
+    out = _stdout()
+    for i, t in enumerate(_comparison_tables(result, run_file.name)):
+        if i:
+            out.print()
+        out.print(t)
+    if store:
+        try:
+            update_comparison(run_file, result.as_group())
+        except KeyboardInterrupt:
+            raise _interrupted() from None
+        except (OSError, RunFileError) as exc:
+            reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else exc
+            raise _fail(EXIT_INPUT, f"cannot store the comparison in {run_file}: {reason}") from None
+        out.print(f"stored in {run_file} (group comparison)", markup=False, soft_wrap=True)
+
+
+# ======================================================================================
+# lcdm-table
+# ======================================================================================
+
+
+@app.command("lcdm-table")
+def lcdm_table(
+    output: Annotated[
+        Path,
+        typer.Argument(help="CSV file to write (z, H in km/s/Mpc).", show_default=False, metavar="OUT.csv"),
+    ],
+    H0: Annotated[float, typer.Option("--H0", help="Hubble constant [km/s/Mpc].")] = constants.PLANCK18_H0,
+    omega_b: Annotated[float, typer.Option("--omega-b", help="Physical baryon density.")] = (
+        constants.PLANCK18_OMEGA_B
+    ),
+    omega_c: Annotated[float, typer.Option("--omega-c", help="Physical cold dark matter density.")] = (
+        constants.PLANCK18_OMEGA_C
+    ),
+    cmb_temperature: Annotated[
+        float, typer.Option("--cmb-temperature", help="CMB temperature today [K].")
+    ] = constants.T_CMB_K,
+    n_eff: Annotated[float, typer.Option("--n-eff", help="Massless neutrino species.")] = constants.N_EFF,
+    matching: Annotated[
+        Path | None,
+        typer.Option(
+            "--matching",
+            help="Take all parameters from this run file's matching LambdaCDM instead.",
+            show_default=False,
+            metavar="RUN.h5",
+        ),
+    ] = None,
+    z_max: Annotated[float, typer.Option("--z-max", help="Largest redshift of the table.")] = 2.5,
+    points: Annotated[int, typer.Option("--points", help="Redshifts, uniform from 0 to z_max.")] = 26,
+    at: Annotated[
+        str | None,
+        typer.Option(
+            "--at",
+            help="Use the redshifts of this table (file or shipped name) instead of a uniform grid.",
+            show_default=False,
+            metavar="TABLE",
+        ),
+    ] = None,
+) -> None:
+    """Write a flat LambdaCDM H(z) table (defaults: Planck 2018 parameters, massless neutrinos)."""
+    import numpy as np
+
+    from backreact.reference import FlatLCDM
+    from backreact.tables import write_hubble_table
+
+    if output.suffix.lower() != ".csv":
+        raise _fail(EXIT_INPUT, f"output file {output} must end in .csv")
+    if matching is not None:
+        from backreact.compare import matching_lcdm
+
+        record = _read_run_or_fail(matching)
+        try:
+            model = matching_lcdm(record.config_toml, record.today.get("H0_km_s_Mpc", float("nan")))
+        except (ValueError, ConfigError) as exc:
+            raise _fail(EXIT_INPUT, f"no matching LambdaCDM for {matching}: {exc}") from None
+        origin = f"the matching LambdaCDM of run file {matching}"
+    else:
+        try:
+            model = FlatLCDM(H0, omega_b, omega_c, cmb_temperature, n_eff)
+        except ValueError as exc:
+            raise _fail(EXIT_INPUT, exc) from None
+        origin = "parameters given on the command line"
+    if at is not None:
+        z = _tables_or_fail([at])[0].z
+        grid = f"the redshifts of table {at}"
+    else:
+        if not (math.isfinite(z_max) and z_max > 0):
+            raise _fail(EXIT_INPUT, f"--z-max must be a finite number > 0, got {z_max:g}")
+        if points < 2:
+            raise _fail(EXIT_INPUT, f"--points must be >= 2, got {points}")
+        z = np.linspace(0.0, z_max, points)
+        grid = f"{points} redshifts uniform in 0 <= z <= {z_max:g}"
+    from backreact.io import package_version
+
+    comments = [
+        f"Flat LambdaCDM H(z) written by backreact {package_version()} ({origin}; {grid}).",
+        f"H0 = {model.H0_km_s_Mpc!r} km/s/Mpc, omega_b = {model.omega_b!r}, omega_c = {model.omega_c!r}, "
+        f"T_CMB = {model.cmb_temperature_K!r} K, N_eff = {model.n_eff!r} massless neutrinos.",
+        f"Omega_m = {model.Omega_m!r}, Omega_r = {model.Omega_r!r}, Omega_lambda = {model.Omega_lambda!r}.",
+        "Units: H in km/s/Mpc. A model calculation, not a measurement.",
+    ]
+    try:
+        path = write_hubble_table(output, z, model.hubble_km_s_Mpc(z), comments=comments)
+    except OSError as exc:
+        raise _fail(EXIT_INPUT, f"cannot write table {output}: {exc.strerror or exc}") from None
+    _stdout().print(f"wrote {path} ({len(z)} rows)", markup=False, soft_wrap=True)
+
+
+# ======================================================================================
+# plot
+# ======================================================================================
+
+
+@app.command()
+def plot(
+    run_files: Annotated[
+        list[Path],
+        typer.Argument(
+            help="One or more run files; several are overlaid.", show_default=False, metavar="RUN.h5..."
+        ),
+    ],
+    out_dir: Annotated[
+        Path | None,
+        typer.Option(
+            "--output-dir",
+            "-o",
+            help="Folder for the figures; default: the folder of the first run file.",
+            show_default=False,
+            metavar="DIR",
+        ),
+    ] = None,
+    table: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--table",
+            "-t",
+            help="Measured H(z) points to show (file or shipped name); default: cosmic_chronometers.",
+            show_default=False,
+            metavar="TABLE",
+        ),
+    ] = None,
+    no_data: Annotated[bool, typer.Option("--no-data", help="Show no measured points.")] = False,
+    fmt: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--format", "-f", help="Image format (png, pdf, svg); repeatable. Default: png and pdf."
+        ),
+    ] = None,
+    z_max: Annotated[
+        float, typer.Option("--z-max", help="Largest redshift of the H(z) and w(z) figures.")
+    ] = 2.5,
+) -> None:
+    """Draw H(z)/H_LCDM - 1, w(z), the density fractions and the propagator of runs."""
+    for path in run_files:
+        _read_run_or_fail(path)  # a clear one-line error before matplotlib is imported
+    if no_data and table:
+        raise _fail(EXIT_INPUT, "--no-data and --table exclude each other")
+    tables = [] if no_data else (_tables_or_fail(table) if table else None)
+    from backreact.plot import plot_runs
+
+    folder = out_dir if out_dir is not None else run_files[0].parent
+    try:
+        written = plot_runs(
+            run_files, folder, tables=tables, formats=tuple(fmt) if fmt else ("png", "pdf"), z_max=z_max
+        )
+    except ValueError as exc:
+        raise _fail(EXIT_INPUT, exc) from None
+    except OSError as exc:
+        raise _fail(EXIT_INPUT, f"cannot write figures to {folder}: {exc.strerror or exc}") from None
+    out = _stdout()
+    for path in written:
+        out.print(f"wrote {path}", markup=False, soft_wrap=True)
 
 
 # ======================================================================================

@@ -19,7 +19,8 @@ Layout (the names are a contract read by other tools; see docs and the registrie
 ``/convergence``
     Dataset ``residual``: max |delta ln H| per iteration (may have length 0).
 ``/comparison`` (only when given)
-    Scalar attributes, plus optional 1-D datasets.
+    Scalar attributes, optional 1-D datasets and subgroups of the same kind (one per
+    compared table, see :mod:`backreact.compare`).
 ``/diagnostics`` (only when non-empty)
     Scalar attributes (numbers, bools, strings).
 
@@ -152,8 +153,9 @@ class RunRecord:
 
     ``history`` maps names from :data:`HISTORY_DATASETS` to 1-D arrays; ``today`` maps
     names from :data:`TODAY_ATTRIBUTES` to floats (a ``None`` value is not stored).
-    ``comparison`` maps names to scalars (stored as attributes) or 1-D arrays (stored as
-    datasets); ``None`` means no comparison group.  ``attrs`` is filled by
+    ``comparison`` maps names to scalars (stored as attributes), 1-D arrays (stored as
+    datasets) or mappings of the same kind (stored as subgroups); ``None`` means no
+    comparison group.  ``attrs`` is filled by
     :func:`read_run` (package_version, created_utc, config_sha256, schema_version,
     dependency_versions as a dict, format) and ignored by :func:`write_run`.
     """
@@ -272,21 +274,25 @@ def _dataset_array(group: str, name: str, value: Any) -> np.ndarray:
 
 
 def _split_comparison(
-    comparison: Mapping[str, Any], datasets: Mapping[str, Any] | None = None
-) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    """Separate scalars (attributes) from 1-D arrays (datasets) and validate both."""
+    comparison: Mapping[str, Any], datasets: Mapping[str, Any] | None = None, group: str = "comparison"
+) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, tuple]]:
+    """Separate scalars (attributes), 1-D arrays (datasets) and mappings (subgroups,
+    split the same way, recursively) and validate them all."""
     attrs: dict[str, Any] = {}
     arrays: dict[str, np.ndarray] = {}
+    groups: dict[str, tuple] = {}
     for name, value in comparison.items():
-        if isinstance(value, np.ndarray | list | tuple):
-            arrays[name] = _dataset_array("comparison", name, value)
+        if isinstance(value, Mapping):
+            groups[name] = _split_comparison(value, None, f"{group}/{name}")
+        elif isinstance(value, np.ndarray | list | tuple):
+            arrays[name] = _dataset_array(group, name, value)
         else:
-            attrs[name] = _scalar_attr("comparison", name, value)
+            attrs[name] = _scalar_attr(group, name, value)
     for name, value in (datasets or {}).items():
         if name in comparison:
-            raise ValueError(f"comparison name {name!r} given both as attribute and as dataset")
-        arrays[name] = _dataset_array("comparison", name, value)
-    return attrs, arrays
+            raise ValueError(f"{group} name {name!r} given both as attribute and as dataset")
+        arrays[name] = _dataset_array(group, name, value)
+    return attrs, arrays, groups
 
 
 def _residuals(residuals: Any) -> np.ndarray:
@@ -345,15 +351,23 @@ def _write_string_array_attr(obj: h5py.HLObject, name: str, values: list[str]) -
     obj.attrs.create(name, np.array([str(v) for v in values], dtype=h5py.string_dtype()))
 
 
-def _write_comparison(f: h5py.File, attrs: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
-    group = f.create_group("comparison")
-    for name, value in attrs.items():
-        group.attrs[name] = value
-    for name, arr in arrays.items():
+def _write_comparison(
+    parent: h5py.Group,
+    attrs: dict[str, Any],
+    arrays: dict[str, np.ndarray],
+    groups: dict[str, tuple],
+    name: str = "comparison",
+) -> None:
+    group = parent.create_group(name)
+    for key, value in attrs.items():
+        group.attrs[key] = value
+    for key, arr in arrays.items():
         if arr.dtype.kind == "U":
-            group.create_dataset(name, data=arr.astype(object), dtype=h5py.string_dtype())
+            group.create_dataset(key, data=arr.astype(object), dtype=h5py.string_dtype())
         else:
-            group.create_dataset(name, data=arr)
+            group.create_dataset(key, data=arr)
+    for key, parts in groups.items():
+        _write_comparison(group, *parts, name=key)
 
 
 def write_run(path: str | os.PathLike, record: RunRecord) -> Path:
@@ -481,6 +495,14 @@ def _read_dataset(ds: h5py.Dataset) -> np.ndarray:
     return np.asarray(ds[()])
 
 
+def _read_group(group: h5py.Group) -> dict[str, Any]:
+    """Attributes, datasets and (recursively) subgroups of ``group`` as one mapping."""
+    out: dict[str, Any] = {name: _py(v) for name, v in group.attrs.items()}
+    for name, obj in group.items():
+        out[name] = _read_group(obj) if isinstance(obj, h5py.Group) else _read_dataset(obj)
+    return out
+
+
 def _open_checked(path: Path) -> h5py.File:
     """Open ``path`` read-only after checking it is a backreact run file we understand."""
     if not path.exists():
@@ -547,10 +569,7 @@ def read_run(path: str | os.PathLike) -> RunRecord:
 
             comparison: dict[str, Any] | None = None
             if "comparison" in f:
-                group = f["comparison"]
-                comparison = {name: _py(v) for name, v in group.attrs.items()}
-                for name in group:
-                    comparison[name] = _read_dataset(group[name])
+                comparison = _read_group(f["comparison"])
 
             diagnostics: dict[str, Any] = {}
             if "diagnostics" in f:
