@@ -29,6 +29,16 @@ _LAZY = {
     "expansion_history": "backreact.background",
     "model_from_config": "backreact.background",
     "run_scenario": "backreact.run",
+    "HubbleTable": "backreact.tables",
+    "TableError": "backreact.tables",
+    "read_hubble_table": "backreact.tables",
+    "write_hubble_table": "backreact.tables",
+    "shipped_table": "backreact.tables",
+    "chi_square": "backreact.tables",
+    "compare_run": "backreact.compare",
+    "matching_lcdm": "backreact.compare",
+    "RunHubble": "backreact.compare",
+    "plot_runs": "backreact.plot",
     "RunResult": "backreact.run",
 }
 

@@ -458,6 +458,8 @@ def _comparison_tables(result: Any, run_name: str) -> list[Table]:
         _add_row(table, "max |H_run / H_LCDM - 1|", _fmt(stats["max_abs_deviation"]))
         _add_row(table, "  at redshift", _fmt(stats["redshift_of_max_deviation"]))
         out.append(table)
+    if result.bao is not None:
+        out.extend(_bao_tables(result.bao, run_name))
     params = _table(
         "matching flat LambdaCDM",
         ("parameter", {}),
@@ -476,6 +478,74 @@ def _comparison_tables(result: Any, run_name: str) -> list[Table]:
         _add_row(params, label, _fmt(value))
     out.append(params)
     return out
+
+
+def _bao_tables(bao: Any, run_name: str) -> list[Table]:
+    run, ref = bao.run, bao.lcdm
+    table = _table(
+        f"{run_name} vs BAO {run.data.name} ({run.points} numbers)",
+        ("statistic", {}),
+        ("run", {"justify": "right", "no_wrap": True}),
+        ("matching LambdaCDM", {"justify": "right", "no_wrap": True}),
+    )
+    na = "n/a"
+    _add_row(
+        table,
+        "r_d [Mpc] (calibrated fit)",
+        _fmt(run.rd_Mpc) if run.rd_Mpc is not None else na,
+        _fmt(ref.rd_Mpc),
+    )
+    _add_row(
+        table,
+        "chi^2 with that r_d",
+        _fmt(run.chi2_rd) if run.chi2_rd is not None else na,
+        _fmt(ref.chi2_rd),
+    )
+    _add_row(
+        table,
+        "  per point",
+        _fmt(run.chi2_rd / run.points) if run.chi2_rd is not None else na,
+        _fmt(ref.chi2_rd / ref.points),
+    )
+    _add_row(table, "chi^2 minimized over r_d", _fmt(run.chi2_free), _fmt(ref.chi2_free))
+    _add_row(table, "  per point", _fmt(run.chi2_free / run.points), _fmt(ref.chi2_free / ref.points))
+    _add_row(table, "  best-fit r_d [Mpc]", _fmt(run.best_rd_Mpc), _fmt(ref.best_rd_Mpc))
+    _add_row(
+        table,
+        "  best-fit H0 r_d [km/s]",
+        _fmt(bao.H0_run * run.best_rd_Mpc),
+        _fmt(bao.H0_lcdm * ref.best_rd_Mpc),
+    )
+    pulls = _table(
+        "pulls (data - model)/sigma"
+        + (" at the calibrated r_d" if run.rd_Mpc is not None else " at the best-fit r_d"),
+        ("tracer", {"no_wrap": True}),
+        ("z", {"justify": "right"}),
+        ("quantity", {"no_wrap": True}),
+        ("data", {"justify": "right"}),
+        ("run", {"justify": "right", "no_wrap": True}),
+        ("matching LambdaCDM", {"justify": "right", "no_wrap": True}),
+    )
+    # both sides at the same kind of r_d, so that the columns compare like with like
+    rd_ref = ref.rd_Mpc if run.rd_Mpc is not None else ref.best_rd_Mpc
+    p_run, p_ref = run.pulls(), ref.pulls(rd_ref)
+    for i in range(run.points):
+        d = run.data
+        _add_row(
+            pulls,
+            d.tracer[i],
+            f"{d.z[i]:.3f}",
+            f"{d.kind[i]}/r_d",
+            _fmt(d.value[i]),
+            f"{p_run[i]:+.2f}",
+            f"{p_ref[i]:+.2f}",
+        )
+    tables = [table, pulls]
+    if bao.rd_note:
+        note = _table("note", ("", {}))
+        _add_row(note, f"no r_d for the run: {bao.rd_note}")
+        tables.append(note)
+    return tables
 
 
 @app.command()
@@ -499,6 +569,12 @@ def compare(
         bool,
         typer.Option("--lcdm", help="Also compare H(z) with the run's matching flat LambdaCDM on a grid."),
     ] = False,
+    bao: Annotated[
+        bool,
+        typer.Option(
+            "--bao", help="Also compare with the shipped DESI DR2 BAO distances (with and without r_d)."
+        ),
+    ] = False,
     z_min: Annotated[float, typer.Option("--z-min", help="Lower end of the redshift range.")] = 0.0,
     z_max: Annotated[float, typer.Option("--z-max", help="Upper end of the redshift range.")] = 2.5,
     store: Annotated[
@@ -506,13 +582,13 @@ def compare(
         typer.Option("--store/--no-store", help="Store the result in the run file's comparison group."),
     ] = True,
 ) -> None:
-    """Compare a run's H(z) with H(z) tables and with its matching flat LambdaCDM."""
+    """Compare a run's H(z) with H(z) tables, BAO distances and its matching flat LambdaCDM."""
     from backreact.compare import compare_run
     from backreact.io import RunFileError, update_comparison
 
     specs = list(table or [])
-    if not specs and not lcdm:
-        raise _fail(EXIT_INPUT, "nothing to compare: give --table TABLE (repeatable) and/or --lcdm")
+    if not specs and not lcdm and not bao:
+        raise _fail(EXIT_INPUT, "nothing to compare: give --table TABLE (repeatable), --lcdm and/or --bao")
     record = _read_run_or_fail(run_file)
     tables = _tables_or_fail(specs)
     if not record.converged:
@@ -524,6 +600,7 @@ def compare(
             record.today.get("H0_km_s_Mpc", float("nan")),
             tables,
             with_lcdm=lcdm,
+            with_bao=bao,
             z_range=(z_min, z_max),
         )
     except ValueError as exc:

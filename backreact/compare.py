@@ -27,6 +27,9 @@ ratio H_model/H_table at every table redshift (mean, min, max); max |H_model/H_t
 over the chosen z range; chi^2 = sum ((H_model - H_i)/sigma_i)^2 and chi^2 per point when
 the table has errors.  Against the matching LambdaCDM directly: H_run/H_LCDM on a grid
 uniform in z over the chosen range, its mean, extremes and max |ratio - 1| with its z.
+Against BAO distances (DESI DR2 by default): chi^2 r_d-free and with the r_d of the
+calibrated fit, per-entry pulls, for both (see :mod:`backreact.bao`); D_M = D_C is the
+integral of the same Hermite curve, so it inherits only the interpolation error.
 """
 
 from __future__ import annotations
@@ -39,6 +42,16 @@ from typing import Any
 
 import numpy as np
 
+from backreact.bao import (
+    BAOData,
+    BAOFit,
+    SoundHorizonError,
+    bao_chi_square,
+    load_desi_dr2,
+    model_distances_Mpc,
+    sound_horizon_Mpc,
+)
+from backreact.constants import SPEED_OF_LIGHT_KM_S
 from backreact.reference import FlatLCDM
 from backreact.tables import HubbleTable, chi_square
 
@@ -50,6 +63,8 @@ __all__ = [
     "matching_lcdm",
     "compare_table",
     "compare_with_lcdm",
+    "compare_bao",
+    "BAOComparison",
     "compare_run",
 ]
 
@@ -106,16 +121,48 @@ class RunHubble:
     def z_min(self) -> float:
         return float(np.expm1(-self.efolds[-1]))
 
-    def __call__(self, z) -> np.ndarray:
+    def _ln_h(self, n):
+        return _hermite(n, self.efolds, self.ln_hubble, self.slope)
+
+    def _efolds_of(self, z) -> np.ndarray:
         z = np.asarray(z, dtype=np.float64)
-        n = -np.log1p(z)
-        if np.any(n < self.efolds[0]) or np.any(n > self.efolds[-1]) or np.any(~np.isfinite(n)):
-            bad = z[(n < self.efolds[0]) | (n > self.efolds[-1]) | ~np.isfinite(n)]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            n = -np.log1p(z)
+        outside = (n < self.efolds[0]) | (n > self.efolds[-1]) | ~np.isfinite(n)
+        if np.any(outside):
             raise ValueError(
-                f"redshift {float(np.ravel(bad)[0]):g} lies outside the run's history "
+                f"redshift {float(np.ravel(z[outside])[0]):g} lies outside the run's history "
                 f"({self.z_min:.3g} <= z <= {self.z_max:.3g})"
             )
-        return np.exp(_hermite(n, self.efolds, self.ln_hubble, self.slope))
+        return n
+
+    def comoving_distance_Mpc(self, z) -> np.ndarray:
+        """Line-of-sight comoving distance D_C(z) = c int_{N(z)}^0 e^{-N} dN / H(N) in Mpc.
+
+        Integrates the same Hermite curve as ``__call__`` interval by interval with an
+        8-node Gauss-Legendre rule (the curve is a smooth function inside each interval,
+        so the rule is exact to round-off there): D_C inherits only the interpolation error.
+        """
+        n = self._efolds_of(z)
+        nodes = self.efolds
+        x, w = np.polynomial.legendre.leggauss(8)
+
+        def integral(lo, hi):  # int_lo^hi c e^-N / H(N) dN, vectorized over intervals
+            mid, half = 0.5 * (hi + lo), 0.5 * (hi - lo)
+            t = mid[..., None] + half[..., None] * x
+            f = SPEED_OF_LIGHT_KM_S * np.exp(-t - self._ln_h(t))
+            return half * np.sum(w * f, axis=-1)
+
+        cumulative = np.concatenate([[0.0], np.cumsum(integral(nodes[:-1], nodes[1:]))])
+
+        def at(m):  # int_{N_0}^{m} for an array m
+            i = np.clip(np.searchsorted(nodes, m, side="right") - 1, 0, nodes.shape[0] - 2)
+            return cumulative[i] + integral(nodes[i], m)
+
+        return at(np.zeros(1))[0] - at(n)
+
+    def __call__(self, z) -> np.ndarray:
+        return np.exp(self._ln_h(self._efolds_of(z)))
 
 
 def _config_cosmology(config_toml: str) -> dict[str, float]:
@@ -275,6 +322,90 @@ def compare_with_lcdm(
     return LCDMComparison(z, run_hubble(z), np.asarray(lcdm.hubble_km_s_Mpc(z), dtype=np.float64))
 
 
+@dataclass(frozen=True)
+class BAOComparison:
+    """The run and its matching LambdaCDM against BAO distances (see backreact.bao).
+
+    ``rd_run_Mpc`` is None (with ``rd_note`` saying why) when the sound-horizon fit does
+    not apply to the run; the r_d-free chi^2 is always there.
+    """
+
+    run: BAOFit
+    lcdm: BAOFit
+    H0_run: float
+    H0_lcdm: float
+    rd_note: str = ""
+
+    def attributes(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"data": self.run.data.name, "points": self.run.points}
+        for label, fit, h0 in (("run", self.run, self.H0_run), ("lcdm", self.lcdm, self.H0_lcdm)):
+            out[f"{label}_chi2_free"] = fit.chi2_free
+            out[f"{label}_chi2_free_per_point"] = fit.chi2_free / fit.points
+            out[f"{label}_best_rd_Mpc"] = fit.best_rd_Mpc
+            out[f"{label}_best_H0_rd_km_s"] = h0 * fit.best_rd_Mpc
+            if fit.rd_Mpc is not None:
+                out[f"{label}_rd_Mpc"] = fit.rd_Mpc
+                out[f"{label}_chi2_rd"] = fit.chi2_rd
+                out[f"{label}_chi2_rd_per_point"] = fit.chi2_rd / fit.points
+        if self.rd_note:
+            out["rd_note"] = self.rd_note
+        return out
+
+    def datasets(self) -> dict[str, np.ndarray]:
+        d = self.run.data
+        return {
+            "redshift": d.z,
+            "tracer": np.asarray(d.tracer, dtype=str),
+            "kind": np.asarray(d.kind, dtype=str),
+            "value": d.value,
+            "sigma": d.sigma,
+            "distance_run_Mpc": self.run.distances_Mpc,
+            "distance_lcdm_Mpc": self.lcdm.distances_Mpc,
+            "pull_run": self.run.pulls(),
+            "pull_lcdm": self.lcdm.pulls(),
+        }
+
+
+def compare_bao(
+    run_hubble: RunHubble,
+    lcdm: FlatLCDM,
+    history: Mapping[str, np.ndarray],
+    data: BAOData | None = None,
+) -> BAOComparison:
+    """chi^2 of the run and its matching LambdaCDM against BAO data (default: DESI DR2).
+
+    Both r_d-free and, where the calibrated fit applies, with r_d of the model: the
+    matching LambdaCDM and the run share omega_b, omega_c and radiation, so they share r_d
+    when the run's spectator is negligible before recombination; otherwise the run has no
+    r_d here and ``rd_note`` says why.
+    """
+    data = data if data is not None else load_desi_dr2()
+    rd_lcdm = sound_horizon_Mpc(
+        lcdm.omega_b, lcdm.omega_c, n_eff=lcdm.n_eff, cmb_temperature_K=lcdm.cmb_temperature_K
+    )
+    note = ""
+    try:
+        rd_run = sound_horizon_Mpc(
+            lcdm.omega_b,
+            lcdm.omega_c,
+            n_eff=lcdm.n_eff,
+            cmb_temperature_K=lcdm.cmb_temperature_K,
+            redshift=history.get("redshift"),
+            spectator_fraction=history.get("fraction_spectator"),
+        )
+    except SoundHorizonError as exc:
+        rd_run, note = None, str(exc)
+    x_run = model_distances_Mpc(data, run_hubble, run_hubble.comoving_distance_Mpc)
+    x_lcdm = model_distances_Mpc(data, lcdm.hubble_km_s_Mpc, lcdm.comoving_distance_Mpc)
+    return BAOComparison(
+        bao_chi_square(data, x_run, rd_run),
+        bao_chi_square(data, x_lcdm, rd_lcdm),
+        float(run_hubble(np.zeros(1))[0]),
+        lcdm.H0_km_s_Mpc,
+        note,
+    )
+
+
 def _group_name(prefix: str, name: str, taken: set[str]) -> str:
     base = prefix + (re.sub(r"[^A-Za-z0-9_]+", "_", name).strip("_") or "table")
     out, k = base, 2
@@ -292,6 +423,7 @@ class Comparison:
     z_range: tuple[float, float]
     tables: list[TableComparison]
     lcdm: LCDMComparison | None = None
+    bao: BAOComparison | None = None
 
     def as_group(self) -> dict[str, Any]:
         """Nested mapping for the run file's ``comparison`` group (scalars -> attributes,
@@ -305,7 +437,7 @@ class Comparison:
             "tables": ",".join(t.table.name for t in self.tables),
         }
         group.update(lcdm_parameters(self.lcdm_model))
-        taken: set[str] = {"lcdm"}
+        taken: set[str] = {"lcdm", "bao"}
         for t in self.tables:
             sub: dict[str, Any] = dict(t.attributes())
             sub.update(t.datasets())
@@ -314,6 +446,10 @@ class Comparison:
             sub = dict(self.lcdm.statistics())
             sub.update(self.lcdm.datasets())
             group["lcdm"] = sub
+        if self.bao is not None:
+            sub = dict(self.bao.attributes())
+            sub.update(self.bao.datasets())
+            group["bao"] = sub
         return group
 
 
@@ -324,6 +460,7 @@ def compare_run(
     tables: Sequence[HubbleTable] = (),
     *,
     with_lcdm: bool = True,
+    with_bao: bool = False,
     z_range: tuple[float, float] = DEFAULT_Z_RANGE,
     points: int = DEFAULT_GRID_POINTS,
 ) -> Comparison:
@@ -343,4 +480,5 @@ def compare_run(
     lcdm = matching_lcdm(config_toml, H0_km_s_Mpc)
     results = [compare_table(run_h, lcdm, t, (z_lo, z_hi)) for t in tables]
     direct = compare_with_lcdm(run_h, lcdm, (z_lo, z_hi), points) if with_lcdm else None
-    return Comparison(lcdm, (z_lo, z_hi), results, direct)
+    bao = compare_bao(run_h, lcdm, history) if with_bao else None
+    return Comparison(lcdm, (z_lo, z_hi), results, direct, bao)
