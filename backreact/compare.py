@@ -104,7 +104,10 @@ class RunHubble:
             if name not in history:
                 raise ValueError(f"the run's history has no {name!r} dataset, so H(z) is unknown")
         n = np.asarray(history["efolds"], dtype=np.float64)
-        ln_h = np.log(np.asarray(history["hubble_km_s_Mpc"], dtype=np.float64))
+        h = np.asarray(history["hubble_km_s_Mpc"], dtype=np.float64)
+        if not np.all(h > 0):  # also catches NaN
+            raise ValueError("the run's H(z) is not positive and finite everywhere (a failed run?)")
+        ln_h = np.log(h)
         if "epsilon" in history:
             slope = -np.asarray(history["epsilon"], dtype=np.float64)
         else:  # older or foreign files: slopes from a spline-like central difference
