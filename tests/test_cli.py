@@ -443,7 +443,10 @@ def test_no_arguments_shows_usage(capsys):
     assert "Traceback" not in err
 
 
-@pytest.mark.parametrize("argv", [["--help"], ["run", "--help"], ["show", "--help"], ["keys", "--help"]])
+@pytest.mark.parametrize(
+    "argv",
+    [["--help"], *([verb, "--help"] for verb in ("run", "show", "compare", "lcdm-table", "plot", "keys"))],
+)
 def test_help(argv, capsys):
     assert cli.main(argv) == 0
     assert "Usage" in capsys.readouterr().out

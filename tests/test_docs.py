@@ -18,3 +18,15 @@ def test_ci_runs_exactly_the_readme_test_command():
     readme = (ROOT / "README.md").read_text()
     ci = (ROOT / ".ci" / "run").read_text().strip().splitlines()[-1]
     assert ci in readme and "pytest" in ci
+
+
+def test_readme_documents_every_command():
+    # a verb added to the command line must be documented in the README's usage block
+    import typer
+
+    from backreact.cli import app
+
+    names = typer.main.get_command(app).commands
+    readme = (ROOT / "README.md").read_text()
+    missing = [name for name in names if f"backreact {name} " not in readme]
+    assert not missing, f"README does not show: {missing}"

@@ -459,11 +459,22 @@ def test_update_comparison_failure_keeps_file(tmp_path, monkeypatch):
     assert leftovers(tmp_path) == []
 
 
+def test_update_comparison_stores_nested_groups(tmp_path):
+    # mappings become subgroups (one per compared table), read back as nested dicts
+    path = write_run(tmp_path / "run.h5", minimal_record())
+    update_comparison(path, {"z_max": 2.5, "table_a": {"chi2": 3.0, "z": np.arange(3.0), "deep": {"n": 1}}})
+    got = read_run(path).comparison
+    assert got["z_max"] == 2.5 and got["table_a"]["chi2"] == 3.0 and got["table_a"]["deep"] == {"n": 1}
+    np.testing.assert_array_equal(got["table_a"]["z"], np.arange(3.0))
+
+
 def test_update_comparison_rejects_bad_input(tmp_path):
     path = write_run(tmp_path / "run.h5", minimal_record())
     before = path.read_bytes()
     with pytest.raises(TypeError, match="chi2"):
-        update_comparison(path, {"chi2": {"nested": 1}})
+        update_comparison(path, {"chi2": {1, 2}})
+    with pytest.raises(TypeError, match="comparison/table_x attribute 'chi2'"):
+        update_comparison(path, {"table_x": {"chi2": None}})
     with pytest.raises(ValueError, match="both"):
         update_comparison(path, {"z": 1.0}, {"z": np.ones(2)})
     assert path.read_bytes() == before
