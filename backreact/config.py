@@ -885,6 +885,14 @@ def parse_config(text: str, source: str = "<string>") -> Config:
     return _build(values, warnings, text=text, source=source)
 
 
+def config_from_mapping(data: Mapping[str, Any], source: str = "<mapping>") -> Config:
+    """Validate already-parsed TOML data (section -> key -> value); the Config's text is
+    its canonical TOML. Raises :class:`ConfigError` with a one-line message."""
+    values, warnings = _validate(dict(data), source)
+    cfg = _build(values, warnings, text="", source=source)
+    return _build(values, warnings, text=cfg.to_toml(), source=source)
+
+
 def load_config(path: str | Path) -> Config:
     """Read a TOML file (UTF-8) and validate it."""
     path = Path(path)

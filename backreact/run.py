@@ -7,6 +7,7 @@ between the history and the observables without changing this interface.
 
 from __future__ import annotations
 
+import functools
 import math
 import time
 from dataclasses import dataclass, field
@@ -45,6 +46,17 @@ class RunResult:
         )
 
 
+@functools.cache
+def _plain_solver():
+    """The background without a spectator as one jitted function for the process (the
+    model's parameters are array leaves, so new values reuse its compiled code)."""
+    import equinox as eqx
+
+    from .background import expansion_history
+
+    return eqx.filter_jit(expansion_history)
+
+
 def _check_finite(history) -> None:
     """Stop with the quantity and N where a NaN/Inf first appears."""
     n = np.asarray(history.efolds)
@@ -56,15 +68,16 @@ def _check_finite(history) -> None:
             raise FloatingPointError(f"background: {name} is not finite at N = {n[i]:.4f} (grid point {i})")
 
 
-def run_scenario(cfg: Config, progress=None) -> RunResult:
+def run_scenario(cfg: Config, progress=None, *, engine: SolveEngine | None = None) -> RunResult:
     """Solve a validated config end to end: the plain history, then (with a closure) the
     self-consistent fixed point, and the observables of the result.
 
-    ``progress``: optional host callback progress(pass, residual) of the fixed point.
+    ``progress``: optional host callback progress(pass, residual) of the fixed point;
+    ``engine``: a :class:`SolveEngine` whose compiled code is reused (sweeps); default a
+    fresh one.
     """
-    import equinox as eqx
 
-    from .background import expansion_history, model_from_config
+    from .background import model_from_config
     from .closures import closure_from_config
     from .observables import (
         history_datasets,
@@ -74,12 +87,11 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
         today_index,
         today_summary,
     )
-    from .propagator import propagator_along, propagator_function
 
     t0 = time.perf_counter()
     model = model_from_config(cfg)
     closure = closure_from_config(cfg)
-    plain = eqx.filter_jit(expansion_history)(model)
+    plain = _plain_solver()(model)
     plain_np = _to_numpy(plain)
     _check_finite(plain_np)
     diagnostics: dict[str, object] = {}
@@ -88,16 +100,15 @@ def run_scenario(cfg: Config, progress=None) -> RunResult:
     iterations = 0
     extra_warnings: list[str] = []
     t1 = time.perf_counter()
+    engine = engine if engine is not None else SolveEngine()
     if closure is None:
         history = plain_np
-        prop = propagator_along(plain, cfg)
+        prop = engine.propagator(cfg, plain)
         out = None
     else:
         from .solve import status_message
 
-        propagate = propagator_function(cfg, plain, third=closure.needs_third)
-
-        fp = _solve_fixed_point(cfg, model, closure, propagate, plain, progress)
+        fp = engine.fixed_point(cfg, model, closure, plain, progress)
         history = _to_numpy(fp.history)
         prop = {k: np.asarray(v) for k, v in fp.propagator.items()}
         out = _to_numpy(fp.output)
@@ -195,17 +206,93 @@ def _solver_settings_and_target(cfg):
     return settings, target
 
 
-def _solve_fixed_point(cfg, model, closure, propagate, plain, progress):
-    import equinox as eqx
+_SETTINGS_FIELDS = ("tolerance", "max_passes", "acceleration", "memory", "damping")
 
-    from .solve import solve_fixed_point
 
-    settings, target = _solver_settings_and_target(cfg)
+class SolveEngine:
+    """Compiled solver pieces shared by every scenario of one static shape (a sweep).
 
-    def solve(m, cl, start):
-        return solve_fixed_point(m, cl, propagate, settings, target, start=start, progress=progress)
+    The fixed point is compiled once per static signature: the propagator method and its
+    settings, the static sizes of its k grid (``sizes``, see
+    :func:`backreact.propagator.propagator_sizes`; default: each history's own), the solver
+    settings and the calibration target's kind. Everything that varies between points of
+    a sweep (the background parameters, the closure's parameters, the prior variance, the
+    target value) enters as traced arguments, so a new point reuses the compiled code.
+    ``compilations`` counts the distinct solver functions built.
+    """
 
-    return eqx.filter_jit(solve)(model, closure, plain)
+    def __init__(self, sizes=None):
+        self.sizes = sizes
+        self.compilations = 0
+        self._solvers: dict = {}
+
+    def _sizes_for(self, cfg, plain):
+        from .propagator import propagator_sizes
+
+        return self.sizes if self.sizes is not None else propagator_sizes(cfg, plain)
+
+    @staticmethod
+    def _key(cfg, sizes, *extra):
+        pc = cfg.propagator
+        sz = (sizes.n_k, sizes.saves1, sizes.saves2) if hasattr(sizes, "n_k") else sizes
+        fields = ("modes_per_efold", "start_x", "handover_x", "stop_x", "rtol", "mu_over_start_hubble")
+        return (pc.method, *(getattr(pc, f, None) for f in fields), sz, *extra)
+
+    def fixed_point(self, cfg, model, closure, plain, progress=None):
+        """The self-consistent FixedPoint of one scenario (see backreact.solve)."""
+        import equinox as eqx
+
+        from ._jax import jnp
+        from .propagator import prior_variance, propagator_function
+        from .solve import Target, solve_fixed_point
+
+        settings, target = _solver_settings_and_target(cfg)
+        sizes = self._sizes_for(cfg, plain)
+        kind = None if target is None else target.kind
+        key = self._key(
+            cfg,
+            sizes,
+            closure.needs_third,
+            tuple(getattr(settings, f) for f in _SETTINGS_FIELDS),
+            kind,
+            progress,
+        )
+        fn = self._solvers.get(key)
+        if fn is None:
+            third = closure.needs_third
+            prop = propagator_function(cfg, plain, third=third, sizes=sizes, prior_argument=True)
+
+            def solve(m, cl, start, prior, target_value):
+                tgt = None if kind is None else Target(target_value, kind)
+                return solve_fixed_point(
+                    m, cl, lambda h: prop(h, prior), settings, tgt, start=start, progress=progress
+                )
+
+            fn = eqx.filter_jit(solve)
+            self._solvers[key] = fn
+            self.compilations += 1
+        prior = jnp.asarray(prior_variance(cfg, float(np.asarray(plain.ln_hubble)[0])))
+        value = target.value if target is not None else jnp.asarray(0.0)
+        return fn(model, closure, plain, prior, value)
+
+    def propagator(self, cfg, plain) -> dict[str, np.ndarray]:
+        """The propagator along a fixed history (no closure), numpy, M_p units."""
+        import equinox as eqx
+
+        from ._jax import jnp
+        from .propagator import prior_variance, propagator_function
+
+        if cfg.propagator.method == "none":
+            return {}
+        sizes = self._sizes_for(cfg, plain)
+        key = self._key(cfg, sizes, "plain")
+        fn = self._solvers.get(key)
+        if fn is None:
+            fn = eqx.filter_jit(propagator_function(cfg, plain, sizes=sizes, prior_argument=True))
+            self._solvers[key] = fn
+            self.compilations += 1
+        prior = jnp.asarray(prior_variance(cfg, float(np.asarray(plain.ln_hubble)[0])))
+        return {k: np.asarray(v) for k, v in fn(plain, prior).items()}
 
 
 def _failure_numbers(fp, status: int) -> str:

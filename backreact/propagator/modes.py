@@ -555,9 +555,19 @@ def _count_in(out_n, t0, t1):
     return i0, i1 - i0
 
 
-def mode_plan(spline: HistorySpline, out_n, settings: ModeSettings, oracle: bool = False) -> ModePlan:
-    """Sizes for ``solve_modes`` (numpy side, outside jit; leaves 20% + 8 slack)."""
-    n_k = mode_count(spline, settings)
+def mode_plan(
+    spline: HistorySpline, out_n, settings: ModeSettings, oracle: bool = False, n_k: int | None = None
+) -> ModePlan:
+    """Sizes for ``solve_modes`` (numpy side, outside jit; leaves 20% + 8 slack).
+
+    ``n_k`` (odd, >= mode_count) asks for more modes than the history needs: the grid then
+    reaches further into the UV, where the renormalized sum no longer depends on the cutoff
+    (DESIGN 3 item 4), so that histories of a sweep can share one static size."""
+    n_min = mode_count(spline, settings)
+    if n_k is None:
+        n_k = n_min
+    elif n_k < n_min or n_k % 2 == 0:
+        raise ValueError(f"n_k must be odd and >= {n_min} for this history, got {n_k}")
     lnk, n0, n1, n2, *_ = _windows(spline, jnp.asarray(out_n), n_k, settings, oracle)
     _, c1 = _count_in(jnp.asarray(out_n), n0, n1)
     _, c2 = _count_in(jnp.asarray(out_n), n1, n2)
